@@ -1,0 +1,38 @@
+"""Small shared helpers: the domain exception, float policy and geometry conventions."""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["FringeError", "as_float", "wrap_phase", "fold_angle_deg"]
+
+
+class FringeError(ValueError):
+    """An input or measurement problem a user can act on.
+
+    The message is one line that names the file (where there is one) and the problem.
+    The command line prints it and exits with status 1; it never shows a traceback.
+    """
+
+
+def as_float(image: np.ndarray) -> np.ndarray:
+    """Return `image` as a floating array (float32 stays float32, all else float64).
+
+    Never returns the input object itself, so callers may modify the result.
+    """
+    arr = np.asarray(image)
+    if arr.dtype == np.float32:
+        return arr.astype(np.float32, copy=True)
+    return arr.astype(np.float64, copy=True)
+
+
+def wrap_phase(phi: float | np.ndarray) -> float | np.ndarray:
+    """Wrap a phase into (-pi, pi]."""
+    out = -((-np.asarray(phi, dtype=float) + np.pi) % (2 * np.pi) - np.pi)
+    return float(out) if np.ndim(out) == 0 else out
+
+
+def fold_angle_deg(t: float) -> float:
+    """Fold an angle in degrees into [0, 180)."""
+    f = float(t) % 180.0
+    return 0.0 if f >= 180.0 else f
