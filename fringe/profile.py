@@ -1,0 +1,207 @@
+"""Rotation-aware fringe profiles: pixels binned across the fringes, in strips along them.
+
+Each pixel at r = (x, row) gets the coordinates ``u = n.(r - c)`` across the fringes and
+``v = s.(r - c)`` along them, with ``n = (cos t, -sin t)``, ``s = (sin t, cos t)`` and c
+the centre of the analysed region. Pixels are summed into bins of width ``bin_width``
+in u and ``n_strips`` strips in v. Every bin keeps its pixel count, the mean and
+variance of u and the mean v inside it, so that a model can be averaged over exactly
+the pixels the bin holds.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from fringe.orient import normal_vector
+
+__all__ = ["Profile", "project", "pixel_coordinates"]
+
+
+def pixel_coordinates(
+    shape: tuple[int, int], orientation_deg: float, centre: tuple[float, float] | None = None
+) -> tuple[np.ndarray, np.ndarray]:
+    """Coordinates ``(u, v)`` across and along the fringes for every pixel.
+
+    Parameters
+    ----------
+    shape : (H, W)
+        Image shape.
+    orientation_deg : float
+        Fringe normal direction, degrees counter-clockwise from +x on screen.
+    centre : (x, row), optional
+        Reference point; default the image centre ((W-1)/2, (H-1)/2).
+
+    Returns
+    -------
+    u, v : (H, W) ndarray
+        ``u`` grows along the fringe normal, ``v`` along the fringes.
+
+    Examples
+    --------
+    >>> u, v = pixel_coordinates((3, 3), 0.0)
+    >>> u[1].tolist(), v[:, 1].tolist()
+    ([-1.0, 0.0, 1.0], [-1.0, 0.0, 1.0])
+    """
+    h, w = shape
+    if centre is None:
+        centre = ((w - 1) / 2.0, (h - 1) / 2.0)
+    nx, nr = normal_vector(orientation_deg)
+    sx, sr = -nr, nx  # s = (sin t, cos t)
+    x = np.arange(w, dtype=np.float64) - centre[0]
+    r = np.arange(h, dtype=np.float64) - centre[1]
+    u = nx * x[None, :] + nr * r[:, None]
+    v = sx * x[None, :] + sr * r[:, None]
+    return u, v
+
+
+@dataclass
+class Profile:
+    """Binned intensities across the fringes.
+
+    Attributes
+    ----------
+    u, v : (M,) ndarray
+        Mean coordinates of the pixels in each non-empty bin (px).
+    u_var : (M,) ndarray
+        Variance of u inside each bin (px^2).
+    strip : (M,) int ndarray
+        Strip index of each bin along the fringes.
+    mean : (M,) ndarray
+        Mean intensity of each bin.
+    count : (M,) ndarray
+        Number of pixels in each bin.
+    var_mean : (M,) ndarray or None
+        Variance of each bin mean from the per-pixel noise model, when one was given.
+    u_range, v_range : (float, float)
+        Extent of u and v over the pixels used.
+    n_strips, bin_width, orientation_deg, centre
+        The projection settings.
+    """
+
+    u: np.ndarray
+    v: np.ndarray
+    u_var: np.ndarray
+    strip: np.ndarray
+    mean: np.ndarray
+    count: np.ndarray
+    var_mean: np.ndarray | None
+    u_range: tuple[float, float]
+    v_range: tuple[float, float]
+    n_strips: int
+    bin_width: float
+    orientation_deg: float
+    centre: tuple[float, float]
+
+    def strip_of(self, v: np.ndarray) -> np.ndarray:
+        """Strip index for along-fringe coordinates ``v`` (as used by `project`)."""
+        if self.n_strips == 1:
+            return np.zeros(np.shape(v), dtype=np.int64)
+        span = max(self.v_range[1] - self.v_range[0], 1e-9)
+        k = ((np.asarray(v) - self.v_range[0]) / span * self.n_strips).astype(np.int64)
+        return np.clip(k, 0, self.n_strips - 1)
+
+    def pooled(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Profile over all strips together: (u, mean, count) per u bin, sorted by u."""
+        order = np.argsort(self.u, kind="stable")
+        u, m, n = self.u[order], self.mean[order], self.count[order]
+        edges = np.floor((u - self.u_range[0]) / self.bin_width).astype(np.int64)
+        edges = np.clip(edges, 0, None)
+        idx, inv = np.unique(edges, return_inverse=True)
+        cnt = np.bincount(inv, weights=n)
+        return (
+            np.bincount(inv, weights=u * n) / cnt,
+            np.bincount(inv, weights=m * n) / cnt,
+            cnt,
+        )
+
+
+def project(
+    image: np.ndarray,
+    mask: np.ndarray | None,
+    *,
+    orientation_deg: float,
+    bin_width: float,
+    n_strips: int = 1,
+    centre: tuple[float, float] | None = None,
+    variance: np.ndarray | None = None,
+) -> Profile:
+    """Integrate an image along the fringe direction into a binned profile.
+
+    Parameters
+    ----------
+    image : (H, W) ndarray
+        Calibrated image.
+    mask : (H, W) bool ndarray or None
+        True where pixels must not be used.
+    orientation_deg : float
+        Direction of the fringe normal.
+    bin_width : float
+        Width of the u bins, px. A fraction of the period (1/8 or less) keeps the
+        averaging inside a bin small; the model accounts for it exactly to second order.
+    n_strips : int
+        Number of strips along the fringes (for orientation refinement and envelopes
+        that vary along the fringes).
+    centre : (x, row), optional
+        Reference point, default the image centre.
+    variance : (H, W) ndarray, optional
+        Per-pixel noise variance; gives ``var_mean`` of each bin.
+
+    Returns
+    -------
+    Profile
+
+    Notes
+    -----
+    The cost is a handful of passes over the pixels (``numpy.bincount``), O(N).
+    """
+    img = np.asarray(image)
+    h, w = img.shape
+    if centre is None:
+        centre = ((w - 1) / 2.0, (h - 1) / 2.0)
+    u, v = pixel_coordinates((h, w), orientation_deg, centre)
+    if mask is not None and mask.any():
+        keep = ~mask
+        u, v, vals = u[keep], v[keep], img[keep]
+        var = variance[keep] if variance is not None else None
+    else:
+        u, v, vals = u.ravel(), v.ravel(), img.ravel()
+        var = variance.ravel() if variance is not None else None
+    umin, umax = float(u.min()), float(u.max())
+    vmin, vmax = float(v.min()), float(v.max())
+    nb = int(np.floor((umax - umin) / bin_width)) + 1
+    kb = np.minimum(((u - umin) / bin_width).astype(np.int64), nb - 1)
+    n_strips = max(1, int(n_strips))
+    if n_strips > 1:
+        span = max(vmax - vmin, 1e-9)
+        ks = np.minimum(((v - vmin) / span * n_strips).astype(np.int64), n_strips - 1)
+        index = ks * nb + kb
+    else:
+        index = kb
+    size = nb * n_strips
+    cnt = np.bincount(index, minlength=size).astype(np.float64)
+    s_i = np.bincount(index, weights=vals.astype(np.float64, copy=False), minlength=size)
+    s_u = np.bincount(index, weights=u, minlength=size)
+    s_uu = np.bincount(index, weights=u * u, minlength=size)
+    s_v = np.bincount(index, weights=v, minlength=size)
+    s_var = np.bincount(index, weights=var, minlength=size) if var is not None else None
+    ok = cnt > 0
+    c = cnt[ok]
+    mu = s_u[ok] / c
+    out_var = None if s_var is None else s_var[ok] / c**2
+    return Profile(
+        u=mu,
+        v=s_v[ok] / c,
+        u_var=np.maximum(s_uu[ok] / c - mu**2, 0.0),
+        strip=(np.nonzero(ok)[0] // nb).astype(np.int64),
+        mean=s_i[ok] / c,
+        count=c,
+        var_mean=out_var,
+        u_range=(umin, umax),
+        v_range=(vmin, vmax),
+        n_strips=n_strips,
+        bin_width=float(bin_width),
+        orientation_deg=float(orientation_deg),
+        centre=(float(centre[0]), float(centre[1])),
+    )
