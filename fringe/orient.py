@@ -110,6 +110,21 @@ def spectral_peak(
     """
     from scipy import fft as sfft
 
+    full_h, full_w = np.shape(image)
+    if max_period is None:
+        max_period = min(full_h, full_w) / 3.0
+    # Large frames: the central 2048 x 2048 pixels give the first estimate (the fit that
+    # follows uses every pixel); periods longer than a third of the crop need the full frame.
+    crop = 2048
+    if (full_h > crop or full_w > crop) and max_period <= crop / 3.0:
+        r0, c0 = max(0, (full_h - crop) // 2), max(0, (full_w - crop) // 2)
+        image = np.asarray(image)[r0:r0 + crop, c0:c0 + crop]
+        mask = None if mask is None else mask[r0:r0 + crop, c0:c0 + crop]
+    elif full_h > crop or full_w > crop:
+        max_period = min(max_period, crop / 3.0)
+        r0, c0 = max(0, (full_h - crop) // 2), max(0, (full_w - crop) // 2)
+        image = np.asarray(image)[r0:r0 + crop, c0:c0 + crop]
+        mask = None if mask is None else mask[r0:r0 + crop, c0:c0 + crop]
     img = _prepare(image, mask)
     h, w = img.shape
     wy = np.hanning(h + 2)[1:-1]
@@ -124,8 +139,6 @@ def spectral_peak(
     fr = sfft.fftfreq(ny)[:, None]
     fc = sfft.rfftfreq(nx)[None, :]
     radius = np.hypot(fr, fc)
-    if max_period is None:
-        max_period = min(h, w) / 3.0
     f_lo = 1.0 / max_period
     f_hi = 1.0 / min_period
     allowed = (radius >= f_lo) & (radius <= f_hi)

@@ -102,18 +102,28 @@ class Profile:
         k = ((np.asarray(v) - self.v_range[0]) / span * self.n_strips).astype(np.int64)
         return np.clip(k, 0, self.n_strips - 1)
 
-    def pooled(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Profile over all strips together: (u, mean, count) per u bin, sorted by u."""
-        order = np.argsort(self.u, kind="stable")
-        u, m, n = self.u[order], self.mean[order], self.count[order]
-        edges = np.floor((u - self.u_range[0]) / self.bin_width).astype(np.int64)
-        edges = np.clip(edges, 0, None)
-        idx, inv = np.unique(edges, return_inverse=True)
-        cnt = np.bincount(inv, weights=n)
-        return (
-            np.bincount(inv, weights=u * n) / cnt,
-            np.bincount(inv, weights=m * n) / cnt,
-            cnt,
+    def pooled(self) -> Profile:
+        """The same bins summed over all strips (a single-strip profile)."""
+        kb = np.floor((self.u - self.u_range[0]) / self.bin_width).astype(np.int64)
+        kb = np.clip(kb, 0, None)
+        n = self.count
+        cnt = np.bincount(kb, weights=n)
+        ok = cnt > 0
+        c = cnt[ok]
+
+        def _sum(x):
+            return np.bincount(kb, weights=x)[ok]
+
+        u = _sum(n * self.u) / c
+        uu = _sum(n * (self.u_var + self.u**2)) / c
+        var_mean = None
+        if self.var_mean is not None:
+            var_mean = _sum(self.var_mean * n**2) / c**2
+        return Profile(
+            u=u, v=_sum(n * self.v) / c, u_var=np.maximum(uu - u**2, 0.0),
+            strip=np.zeros(c.size, dtype=np.int64), mean=_sum(n * self.mean) / c, count=c,
+            var_mean=var_mean, u_range=self.u_range, v_range=self.v_range, n_strips=1,
+            bin_width=self.bin_width, orientation_deg=self.orientation_deg, centre=self.centre,
         )
 
 
@@ -126,6 +136,7 @@ def project(
     n_strips: int = 1,
     centre: tuple[float, float] | None = None,
     variance: np.ndarray | None = None,
+    row_step: int = 1,
 ) -> Profile:
     """Integrate an image along the fringe direction into a binned profile.
 
@@ -147,6 +158,8 @@ def project(
         Reference point, default the image centre.
     variance : (H, W) ndarray, optional
         Per-pixel noise variance; gives ``var_mean`` of each bin.
+    row_step : int
+        Use every ``row_step``-th row only (a quick look at a large image).
 
     Returns
     -------
@@ -161,6 +174,10 @@ def project(
     if centre is None:
         centre = ((w - 1) / 2.0, (h - 1) / 2.0)
     u, v = pixel_coordinates((h, w), orientation_deg, centre)
+    if row_step > 1:
+        u, v, img = u[::row_step], v[::row_step], img[::row_step]
+        mask = None if mask is None else mask[::row_step]
+        variance = None if variance is None else variance[::row_step]
     if mask is not None and mask.any():
         keep = ~mask
         u, v, vals = u[keep], v[keep], img[keep]

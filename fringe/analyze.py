@@ -18,7 +18,7 @@ from fringe.orient import local_fringe_map, spectral_peak
 from fringe.profile import Profile, pixel_coordinates, project
 from fringe.result import FringeResult
 
-__all__ = ["measure", "measure_frames", "analyze", "NoiseModel", "DEFAULT_MIN_SNR"]
+__all__ = ["measure", "measure_frames", "analyze_image", "NoiseModel", "DEFAULT_MIN_SNR"]
 
 #: Spectral SNR below which an image is reported as holding no fringe pattern.
 DEFAULT_MIN_SNR = 5.0
@@ -45,7 +45,7 @@ def _noise_from_residuals(
     mask: np.ndarray | None,
     fit: FitResult,
     prof: Profile,
-    max_pixels: int = 1_500_000,
+    max_pixels: int = 400_000,
 ) -> NoiseModel:
     """Estimate the per-pixel noise from neighbouring-pixel differences of fit residuals.
 
@@ -99,6 +99,16 @@ def _noise_from_residuals(
             coef = np.linalg.lstsq(design * np.sqrt(wts)[:, None], ys_a * np.sqrt(wts),
                                    rcond=None)[0]
             alpha, beta = float(coef[0]), float(coef[1])
+            # Keep the shot-like term only when the data ask for it (slope above 3 sigma).
+            res_w = (ys_a - design @ coef) * np.sqrt(wts)
+            dof = max(len(xs_a) - 2, 1)
+            try:
+                cov_c = np.linalg.inv((design * wts[:, None]).T @ design)
+                s_beta = float(np.sqrt(cov_c[1, 1] * max(1.0, res_w @ res_w / dof)))
+            except np.linalg.LinAlgError:
+                s_beta = np.inf
+            if not beta > 3 * s_beta:
+                return NoiseModel(max(overall, var_floor))
             floor = max(1e-3 * overall, var_floor)
             if beta > 0 and alpha > floor:
                 return NoiseModel(alpha, beta)
@@ -113,44 +123,52 @@ def _bin_sigma(prof: Profile, noise: NoiseModel | None) -> np.ndarray:
         return np.sqrt(np.maximum(prof.var_mean, 1e-300))
     if noise is None:
         return 1.0 / np.sqrt(prof.count)
-    return np.sqrt(noise.variance(prof.mean) / prof.count)
+    if noise.beta == 0.0:
+        return np.sqrt(noise.alpha / prof.count)
+    # Level from a smoothed profile (not the noisy bin means) to avoid weighting bias.
+    from scipy.ndimage import uniform_filter1d
+
+    order = np.argsort(prof.u, kind="stable")
+    smooth = np.empty_like(prof.mean)
+    smooth[order] = uniform_filter1d(prof.mean[order], size=5, mode="nearest")
+    return np.sqrt(noise.variance(smooth) / prof.count)
 
 
 def _pooled_envelope(fit: FitResult, prof: Profile):
-    """Background S and amplitude A pooled over strips per u bin, with their gradients."""
+    """Background S and amplitude A pooled over strips, at the peak of the envelope.
+
+    The strips are pooled with fixed weights (their pixel counts), so that a constant
+    envelope stays constant; the peak is searched over the u range where the region
+    is at least half as long along the fringes as at its longest.
+    """
     from numpy.polynomial import legendre as leg
 
     k1 = fit.order + 1
-    basis = leg.legvander(fit.xi(prof.u), fit.order)
-    s_i = np.einsum("ik,ik->i", basis, fit.a[prof.strip])
-    a_i = np.einsum("ik,ik->i", basis, fit.b[prof.strip])
+    wj = np.bincount(prof.strip, weights=prof.count, minlength=prof.n_strips)
+    wj = wj / wj.sum()
+    a_pool = wj @ fit.a
+    b_pool = wj @ fit.b
     kb = np.floor((prof.u - prof.u_range[0]) / prof.bin_width).astype(np.int64)
     kb = np.clip(kb, 0, None)
-    nb = int(kb.max()) + 1
-    cnt = np.bincount(kb, weights=prof.count, minlength=nb)
-    s_bar = np.bincount(kb, weights=prof.count * s_i, minlength=nb)
-    a_bar = np.bincount(kb, weights=prof.count * a_i, minlength=nb)
+    cnt = np.bincount(kb, weights=prof.count)
+    u_bin = np.bincount(kb, weights=prof.count * prof.u)
     ok = cnt > 0
-    s_bar[ok] /= cnt[ok]
-    a_bar[ok] /= cnt[ok]
-    eligible = ok & (cnt >= 0.5 * np.median(cnt[ok]))
-    cand = np.where(eligible, a_bar, -np.inf)
-    kstar = int(np.argmax(cand))
-    sel = kb == kstar
-    n_strips = prof.n_strips
-    grad_a = np.zeros((n_strips, k1))
-    grad_b = np.zeros((n_strips, k1))
-    for j in range(n_strips):
-        sj = sel & (prof.strip == j)
-        if sj.any():
-            wsum = (prof.count[sj, None] * basis[sj]).sum(axis=0) / cnt[kstar]
-            grad_a[j] = wsum
-            grad_b[j] = wsum
-    u_star = float(np.average(prof.u[sel], weights=prof.count[sel]))
-    return float(s_bar[kstar]), float(a_bar[kstar]), grad_a, grad_b, u_star, s_bar[ok], a_bar[ok]
+    u_bin = u_bin[ok] / cnt[ok]
+    eligible = cnt[ok] >= 0.5 * np.max(cnt[ok])
+    u_grid = u_bin[eligible] if eligible.any() else u_bin
+    basis = leg.legvander(fit.xi(u_grid), fit.order)
+    s_curve = basis @ a_pool
+    a_curve = basis @ b_pool
+    kstar = int(np.argmax(a_curve))
+    lk = basis[kstar]
+    grad_a = wj[:, None] * lk[None, :]
+    grad_b = wj[:, None] * lk[None, :]
+    assert grad_a.shape == (prof.n_strips, k1)
+    return (float(s_curve[kstar]), float(a_curve[kstar]), grad_a, grad_b,
+            float(u_grid[kstar]), s_curve, a_curve)
 
 
-def analyze(
+def analyze_image(
     image: np.ndarray,
     mask: np.ndarray | None = None,
     *,
@@ -263,7 +281,7 @@ def analyze(
     bin_width = min(0.25, p0 / 12.0)
     n_bins = extent_u / bin_width
     n_strips = int(np.clip(extent_v // 16.0, 2, 8)) if extent_v >= 32 else 1
-    max_rows = 60_000
+    max_rows = 30_000
     if n_bins * n_strips > max_rows:
         bin_width = min(p0 / 8.0, max(bin_width, extent_u * n_strips / max_rows))
         n_bins = extent_u / bin_width
@@ -275,8 +293,9 @@ def analyze(
 
     # 3. First fit, equal pixel weights, to refine the orientation and model the noise.
     omega0 = 2 * np.pi / p0
+    row_step = max(1, int(h * w // 2_000_000))
     prof = project(img, bad, orientation_deg=t0, bin_width=bin_width, n_strips=n_strips,
-                   variance=variance)
+                   variance=variance, row_step=row_step)
     k_first = min(2, max_order)
     try:
         fit1 = fit_profile(prof, omega0=omega0, order=k_first,
@@ -291,14 +310,19 @@ def analyze(
         noise = NoiseModel(float(np.median(variance[~bad])), 0.0, source="calibration")
 
     # 4. Re-project along the refined normal, choose the envelope order, final fit.
-    prof1 = project(img, bad, orientation_deg=t1, bin_width=bin_width, n_strips=1,
-                    variance=variance)
-    order, _ = choose_order(prof1, omega0=omega1, sigma=_bin_sigma(prof1, noise),
-                            max_order=max_order)
     prof2 = project(img, bad, orientation_deg=t1, bin_width=bin_width, n_strips=n_strips,
                     variance=variance)
+    prof1 = prof2.pooled()
+    order, _ = choose_order(prof1, omega0=omega1, sigma=_bin_sigma(prof1, noise),
+                            max_order=max_order)
     try:
         fit = fit_profile(prof2, omega0=omega1, order=order, sigma=_bin_sigma(prof2, noise))
+        if variance is None and noise.beta > 0:
+            # Weights from the model, not the data: data-derived weights bias the level.
+            level = fit.model(prof2.u, prof2.v, prof2.strip, prof2.u_var)
+            sig2 = np.sqrt(noise.variance(level) / prof2.count)
+            fit = fit_profile(prof2, omega0=fit.omega, order=order, sigma=sig2,
+                              kappa0=fit.kappa)
     except (np.linalg.LinAlgError, ValueError) as exc:
         return res.fail(f"fringe fit failed: {exc}")
 
@@ -478,7 +502,7 @@ def _measure_frame(frame, cal, roi, options, infer_fn=None) -> FringeResult:
                  "reduce the exposure")
     if roi is not None:
         res.provenance.append(("roi", {"x": roi[0], "y": roi[1], "w": roi[2], "h": roi[3]}))
-    analyze(data, mask, variance=var, result=res,
+    analyze_image(data, mask, variance=var, result=res,
             **{k: options[k] for k in _ANALYZE_OPTS if options.get(k) is not None})
     if frame.meta.get("srgb_decoded"):
         res.warn("8-bit sRGB input decoded to linear light; phone processing (tone curves, "
