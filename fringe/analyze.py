@@ -13,7 +13,7 @@ from typing import Any
 import numpy as np
 
 from fringe._util import FringeError, fold_angle_deg, wrap_phase
-from fringe.fit import FitResult, choose_order, fit_profile
+from fringe.fit import FitResult, choose_order, fit_profile, fit_sinc2_envelope
 from fringe.orient import local_fringe_map, spectral_peak
 from fringe.profile import Profile, pixel_coordinates, project
 from fringe.result import FringeResult
@@ -346,6 +346,10 @@ def analyze_image(
         # A single strip cannot see the orientation; the spectral estimate stands.
         t_err = float(np.rad2deg(period / (np.pi * max(extent_v, 1.0) * max(peak.snr, 1.0))))
         res.warn("orientation from the spectrum only (region too short along the fringes)")
+    if 180.0 - t_final < max(2.0 * t_err, 1e-6):
+        # Within the uncertainty of the fold: prefer 0 deg (normal along +x) to 179.99 deg.
+        t_final = 0.0
+        phi = -phi
 
     s_pk, a_pk, grad_a, grad_b, u_star, s_curve, a_curve = _pooled_envelope(fit, prof2)
     k1 = fit.order + 1
@@ -373,13 +377,31 @@ def analyze_image(
     res.set("pixel_noise", sigma_pix)
     res.set("pixel_mtf", mtf)
     res.set("fringes_in_region", float(extent_u / period))
-    res.set("envelope_peak_px", u_star)
     res.set("envelope_order", int(fit.order))
     res.set("chi2_red", fit.chi2_red)
     res.provenance.append(("fit", {"model": "Legendre background and envelope",
                                    "order": fit.order, "strips": nstr,
                                    "bin_width_px": bin_width, "chi2_red": fit.chi2_red,
                                    "noise": noise.as_dict()}))
+
+    # Single-slit (sinc²) envelope, when the envelope is resolved in the region.
+    u_env = u_star
+    if fit.order >= 2 and extent_u / period >= 6 and np.min(a_curve) < 0.5 * np.max(a_curve):
+        env = fit_sinc2_envelope(prof1, omega=fit.omega, kappa=fit.kappa, phi=fit.phi,
+                                 sigma=_bin_sigma(prof1, noise), u_peak=u_star)
+        if env is not None and env.width_err < 0.2 * env.width:
+            u_env = env.u0
+            res.set("envelope_zero_px", env.width, env.width_err)
+            res.set("envelope_visibility", env.visibility, env.visibility_err)
+            res.provenance.append(("envelope", {"model": "sinc2", "chi2_red":
+                                                env.chi2 / max(env.dof, 1)}))
+    nx1, nr1 = np.cos(np.deg2rad(t1)), -np.sin(np.deg2rad(t1))
+    res.set("envelope_centre_x_px", prof2.centre[0] + u_env * nx1)
+    res.set("envelope_centre_y_px", prof2.centre[1] + u_env * nr1)
+    res.set("phase_at_envelope_rad", wrap_phase(fit.omega * u_env + fit.phi))
+    res.context.update({"fit": fit, "profile": prof2, "pooled": prof1, "noise": noise,
+                        "u_envelope": u_env, "orientation_fit_deg": t1,
+                        "sigma_pooled": _bin_sigma(prof1, noise)})
 
     # 6. Warnings that make a number unreliable.
     if period < 2.5:
@@ -528,6 +550,10 @@ def measure_frames(
 
     cal = _calibration(dark, flat, options)
     io_opts = {k: options[k] for k in ("channel", "srgb", "max_pixels") if k in options}
+    if options.get("single_aperture") is not None:
+        options = dict(options)
+        options["intensity_ratio"] = _single_aperture_levels(options.pop("single_aperture"),
+                                                             cal, roi, options)
     infer_fn = _inference(options)
     if isinstance(image, np.ndarray):
         arr = np.asarray(image)
@@ -544,17 +570,35 @@ def measure_frames(
         yield _measure_frame(fr, cal, roi, options, infer_fn)
 
 
+_GEOMETRY_KEYS = ("pixel_um", "distance_mm", "slit_separation_um", "wavelength_nm",
+                  "source_distance_mm", "source_shape", "scale_points", "intensity_ratio")
+
+
 def _inference(options: dict):
-    keys = ("pixel_um", "distance_mm", "slit_separation_um", "wavelength_nm",
-            "source_distance_mm", "source_shape", "scale_points", "slit_width_um")
-    if not any(options.get(k) is not None for k in keys):
+    if not any(options.get(k) is not None for k in _GEOMETRY_KEYS):
         return None
-    try:
-        from fringe import infer
-    except ImportError:  # pragma: no cover - inference not installed
-        return None
-    geom = {k: options[k] for k in keys if options.get(k) is not None}
+    from fringe import infer
+
+    geom = {k: options[k] for k in _GEOMETRY_KEYS if options.get(k) is not None}
     return lambda res: infer.infer_into(res, **geom)
+
+
+def _single_aperture_levels(files, cal, roi, options) -> tuple[float, float]:
+    """Mean calibrated level of each single-aperture frame over the region."""
+    from fringe import calibrate, io
+
+    io_opts = {k: options[k] for k in ("channel", "srgb", "max_pixels") if k in options}
+    levels = []
+    for path in files:
+        fr = io.read_frame(str(path), 0, **io_opts)
+        _check_roi(roi, fr.data.shape, fr.file)
+        c = calibrate.calibrate_frame(fr, cal)
+        data, mask = _crop(c.data, roi), _crop(c.mask, roi)
+        good = ~mask & np.isfinite(data)
+        if not good.any():
+            raise FringeError(f"{path}: no usable pixels for the single-aperture level")
+        levels.append(float(np.mean(data[good])))
+    return levels[0], levels[1]
 
 
 def measure(
@@ -614,5 +658,8 @@ def measure(
 
     cal = _calibration(dark, flat, options)
     io_opts = {k: options[k] for k in ("channel", "srgb", "max_pixels") if k in options}
+    if options.get("single_aperture") is not None:
+        options["intensity_ratio"] = _single_aperture_levels(options.pop("single_aperture"),
+                                                             cal, roi, options)
     fr = io.read_frame(str(image), frame_index, **io_opts)
     return _measure_frame(fr, cal, roi, options, _inference(options))

@@ -321,3 +321,176 @@ def choose_order(
             if worse >= 2:
                 break
     return best[1], best[2]
+
+
+@dataclass
+class EnvelopeFit:
+    """Single-aperture (sinc²) envelope fitted to a pooled profile.
+
+    ``m(u) = bg + I0 sinc²((u - u0)/W) (1 + V g cos(omega u + kappa v + phi))``: the first
+    zeros of the envelope lie at u0 ± W (px along the normal).
+    """
+
+    u0: float
+    u0_err: float
+    width: float
+    width_err: float
+    visibility: float
+    visibility_err: float
+    background: float
+    peak: float
+    chi2: float
+    dof: int
+
+
+def _sinc2_design(prof: Profile, u0: float, width: float, omega: float, kappa: float):
+    env = np.sinc((prof.u - u0) / width) ** 2
+    g = np.exp(-0.5 * omega**2 * prof.u_var)
+    psi = omega * prof.u + kappa * prof.v
+    return np.vstack([np.ones_like(env), env, env * g * np.cos(psi), env * g * np.sin(psi)]).T
+
+
+def fit_sinc2_envelope(
+    prof: Profile,
+    *,
+    omega: float,
+    kappa: float,
+    phi: float,
+    sigma: np.ndarray,
+    u_peak: float,
+) -> EnvelopeFit | None:
+    """Fit the two-slit Fraunhofer form with a sinc² single-slit envelope.
+
+    Parameters
+    ----------
+    prof : Profile
+        Pooled (single-strip) profile.
+    omega, kappa, phi : float
+        Fringe parameters from the main fit (starting values).
+    sigma : (M,) ndarray
+        Uncertainty of each bin mean.
+    u_peak : float
+        Envelope peak from the main fit (starting value of the centre).
+
+    Returns
+    -------
+    EnvelopeFit or None
+        None when the fit fails or the envelope is not resolved in the region.
+
+    Notes
+    -----
+    The Fraunhofer pattern of two slits of width a, centre separation d is
+    I(theta) = I0 (sin beta / beta)² cos² alpha with beta = pi a sin(theta)/lambda and
+    alpha = pi d sin(theta)/lambda; near the axis the envelope zeros are a distance
+    W = lambda L/a from the centre, while the fringe period is lambda L/d.
+
+    References
+    ----------
+    .. [1] E. Hecht, Optics, 5th ed., Pearson (2017), sec. 10.2.2.
+    """
+    from scipy.optimize import least_squares
+
+    lo, hi = prof.u_range
+    span = hi - lo
+    w_sig = 1.0 / sigma
+    best = None
+    for wf in np.geomspace(0.15, 3.0, 24):
+        width = wf * span / 2
+        for du in np.linspace(-0.1, 0.1, 5) * span:
+            des = _sinc2_design(prof, u_peak + du, width, omega, kappa)
+            coef, *_ = np.linalg.lstsq(des * w_sig[:, None], prof.mean * w_sig, rcond=None)
+            r = (prof.mean - des @ coef) * w_sig
+            c2 = float(r @ r)
+            if best is None or c2 < best[0]:
+                best = (c2, u_peak + du, width, coef)
+    _, u0, width, coef = best
+    bg, i0, cc, ss = coef
+    if i0 <= 0:
+        return None
+    vis = float(np.hypot(cc, ss) / i0)
+    ph = float(np.arctan2(-ss, cc))
+
+    def resid(p):
+        bg_, i0_, u0_, w_, v_, om_, ph_ = p
+        env = np.sinc((prof.u - u0_) / w_) ** 2
+        g = np.exp(-0.5 * om_**2 * prof.u_var)
+        m = bg_ + i0_ * env * (1 + v_ * g * np.cos(om_ * prof.u + kappa * prof.v + ph_))
+        return (prof.mean - m) * w_sig
+
+    p0 = np.array([bg, i0, u0, width, vis, omega, ph])
+    scale = np.array([abs(i0) + 1e-12, abs(i0) + 1e-12, span, span, 1.0, 1.0 / span, 1.0])
+    try:
+        sol = least_squares(resid, p0, x_scale=scale, method="trf", max_nfev=400)
+    except (ValueError, np.linalg.LinAlgError):
+        return None
+    if not sol.success:
+        return None
+    jac = sol.jac
+    try:
+        cov = np.linalg.inv(jac.T @ jac)
+    except np.linalg.LinAlgError:
+        return None
+    chi2 = float(sol.fun @ sol.fun)
+    dof = max(prof.mean.size - 7, 1)
+    cov *= max(1.0, chi2 / dof)
+    bg_, i0_, u0_, w_, v_, _, _ = sol.x
+    err = np.sqrt(np.maximum(np.diag(cov), 0.0))
+    w_ = abs(w_)
+    # Resolved only if a first zero falls inside the region.
+    if not ((lo <= u0_ - w_ <= hi) or (lo <= u0_ + w_ <= hi)):
+        return None
+    return EnvelopeFit(u0=float(u0_), u0_err=float(err[2]), width=float(w_),
+                       width_err=float(err[3]), visibility=float(v_),
+                       visibility_err=float(err[4]), background=float(bg_), peak=float(i0_),
+                       chi2=chi2, dof=dof)
+
+
+def local_visibility(
+    prof: Profile,
+    *,
+    omega: float,
+    kappa: float,
+    phi: float,
+    sigma: np.ndarray,
+    window_px: float,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Visibility in windows along the profile (fringe frequency and phase held fixed).
+
+    In each window of ``window_px`` (a few periods) a linear least-squares fit of
+    ``c0 + c1 g cos(psi) + c2 g sin(psi)`` gives V = hypot(c1, c2)/c0 and its
+    uncertainty by first-order propagation of the fit covariance.
+
+    Returns
+    -------
+    u, v, v_err : ndarray
+        Window centres (px), visibilities and 1-sigma uncertainties.
+    """
+    lo, hi = prof.u_range
+    n_win = int((hi - lo) // window_px)
+    g = np.exp(-0.5 * omega**2 * prof.u_var)
+    psi = omega * prof.u + kappa * prof.v + phi
+    out_u, out_v, out_e = [], [], []
+    for k in range(n_win):
+        a, b = lo + k * window_px, lo + (k + 1) * window_px
+        sel = (prof.u >= a) & (prof.u < b)
+        if sel.sum() < 6:
+            continue
+        w = 1.0 / sigma[sel]
+        des = np.vstack([np.ones(sel.sum()), g[sel] * np.cos(psi[sel]),
+                         g[sel] * np.sin(psi[sel])]).T
+        dw = des * w[:, None]
+        coef, *_ = np.linalg.lstsq(dw, prof.mean[sel] * w, rcond=None)
+        try:
+            cov = np.linalg.inv(dw.T @ dw)
+        except np.linalg.LinAlgError:
+            continue
+        c0, c1, c2 = coef
+        if c0 <= 0:
+            continue
+        amp = float(np.hypot(c1, c2))
+        vis = amp / c0
+        grad = np.array([-vis / c0, c1 / (amp * c0 + 1e-300), c2 / (amp * c0 + 1e-300)])
+        out_u.append(float(np.average(prof.u[sel], weights=prof.count[sel])))
+        out_v.append(vis)
+        out_e.append(float(np.sqrt(max(grad @ cov @ grad, 0.0))))
+    return np.array(out_u), np.array(out_v), np.array(out_e)

@@ -64,9 +64,9 @@ def text_table(results: Sequence[FringeResult], extra: Sequence[tuple[str, str, 
     widths = [max(len(header[i]), *(len(row[i]) for row in rows)) if rows else len(header[i])
               for i in range(len(header))]
     out = _io.StringIO()
-    out.write("  ".join(h.ljust(w) for h, w in zip(header, widths)).rstrip() + "\n")
-    for row, n in zip(rows, notes):
-        out.write("  ".join(c.ljust(w) for c, w in zip(row, widths)).rstrip() + "\n")
+    out.write("  ".join(h.ljust(w) for h, w in zip(header, widths, strict=False)).rstrip() + "\n")
+    for row, n in zip(rows, notes, strict=False):
+        out.write("  ".join(c.ljust(w) for c, w in zip(row, widths, strict=False)).rstrip() + "\n")
         for line in n:
             out.write(line + "\n")
     return out.getvalue()

@@ -42,6 +42,8 @@ class FringeResult:
     warnings: list[str] = field(default_factory=list)
     values: dict[str, Any] = field(default_factory=dict)
     provenance: list[tuple[str, dict]] = field(default_factory=list)
+    #: Intermediate objects of the measurement (profile, fit) for inference; not reported.
+    context: dict = field(default_factory=dict, repr=False, compare=False)
 
     def set(self, key: str, value: float, err: float | None = None) -> None:
         """Store a value (and its 1-sigma uncertainty)."""
@@ -73,6 +75,7 @@ class FringeResult:
         keep = {k: v for k, v in self.values.items() if k in ("snr", "saturated_fraction",
                                                                 "spectral_snr")}
         self.values = keep
+        self.context = {}
         return self
 
     def to_dict(self) -> dict[str, Any]:
