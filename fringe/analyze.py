@@ -45,7 +45,7 @@ def _noise_from_residuals(
     mask: np.ndarray | None,
     fit: FitResult,
     prof: Profile,
-    max_pixels: int = 400_000,
+    max_pixels: int = 150_000,
 ) -> NoiseModel:
     """Estimate the per-pixel noise from neighbouring-pixel differences of fit residuals.
 
@@ -278,12 +278,12 @@ def analyze_image(
     # 2. Projection settings.
     extent_u = abs(np.cos(np.deg2rad(t0))) * (w - 1) + abs(np.sin(np.deg2rad(t0))) * (h - 1)
     extent_v = abs(np.sin(np.deg2rad(t0))) * (w - 1) + abs(np.cos(np.deg2rad(t0))) * (h - 1)
-    bin_width = min(0.25, p0 / 12.0)
+    bin_width = p0 / 16.0
     n_bins = extent_u / bin_width
     n_strips = int(np.clip(extent_v // 16.0, 2, 8)) if extent_v >= 32 else 1
     max_rows = 30_000
     if n_bins * n_strips > max_rows:
-        bin_width = min(p0 / 8.0, max(bin_width, extent_u * n_strips / max_rows))
+        bin_width = min(p0 / 8.0, max(bin_width, extent_u * n_strips / max_rows))  # noqa: E501
         n_bins = extent_u / bin_width
         if n_bins * n_strips > max_rows:
             n_strips = max(2, int(max_rows // n_bins)) if extent_v >= 32 else 1
@@ -313,8 +313,10 @@ def analyze_image(
     prof2 = project(img, bad, orientation_deg=t1, bin_width=bin_width, n_strips=n_strips,
                     variance=variance)
     prof1 = prof2.pooled()
+    # Order by BIC with the fringe frequency and phase of the first fit held (rotated
+    # into the new projection: the phase at the centre is unchanged).
     order, _ = choose_order(prof1, omega0=omega1, sigma=_bin_sigma(prof1, noise),
-                            max_order=max_order)
+                            max_order=max_order, kappa=0.0, phi=fit1.phi)
     try:
         fit = fit_profile(prof2, omega0=omega1, order=order, sigma=_bin_sigma(prof2, noise))
         if variance is None and noise.beta > 0:

@@ -97,17 +97,36 @@ def _solve_linear(prof, weights, basis, g, psi, n_strips):
     b = np.zeros((n_strips, k1))
     resid = np.empty_like(prof.mean)
     cosp = g * np.cos(psi)
-    for j in range(n_strips):
-        sel = prof.strip == j
-        if not sel.any():
+    for j, sel in enumerate(_strip_slices(prof, n_strips)):
+        if sel.stop <= sel.start:
             continue
         w = weights[sel]
         design = np.hstack([basis[sel], basis[sel] * cosp[sel, None]]) * w[:, None]
         target = prof.mean[sel] * w
-        coef, *_ = np.linalg.lstsq(design, target, rcond=None)
+        coef = _lsq(design, target)
         a[j], b[j] = coef[:k1], coef[k1:]
         resid[sel] = target - design @ coef
     return a, b, resid
+
+
+def _strip_slices(prof: Profile, n_strips: int) -> list[slice]:
+    """Bins are stored strip by strip (see `project`): one slice per strip."""
+    bounds = np.searchsorted(prof.strip, np.arange(n_strips + 1))
+    return [slice(int(bounds[j]), int(bounds[j + 1])) for j in range(n_strips)]
+
+
+def _lsq(design: np.ndarray, target: np.ndarray) -> np.ndarray:
+    """Linear least squares by the normal equations (well conditioned: Legendre basis),
+    falling back to an SVD solution when they are singular."""
+    gram = design.T @ design
+    rhs = design.T @ target
+    try:
+        from scipy.linalg import LinAlgError as _SciErr
+        from scipy.linalg import cho_factor, cho_solve
+
+        return cho_solve(cho_factor(gram, check_finite=False), rhs, check_finite=False)
+    except (np.linalg.LinAlgError, _SciErr, ValueError):
+        return np.linalg.lstsq(design, target, rcond=None)[0]
 
 
 def _initial_phase(prof, weights, xi, order, omega, kappa, n_strips):
@@ -294,11 +313,15 @@ def choose_order(
     omega0: float,
     sigma: np.ndarray,
     max_order: int,
-) -> tuple[int, FitResult]:
+    kappa: float = 0.0,
+    phi: float | None = None,
+) -> tuple[int, FitResult | None]:
     """Choose the Legendre order by the Bayesian information criterion.
 
     Orders 0, 1, 2, ... up to ``max_order`` are fitted; the one with the smallest
-    chi² + p ln(M) wins (p parameters, M bins).
+    chi² + p ln(M) wins (p parameters, M bins). With ``phi`` given the fringe frequency
+    and phase are held at (omega0, kappa, phi) and only the linear coefficients are
+    solved for each order (fast); otherwise each order gets a full fit.
 
     References
     ----------
@@ -309,10 +332,19 @@ def choose_order(
     m = prof.mean.size
     orders = [k for k in (0, 1, 2, 3, 4, 5, 6, 8, 10, 12) if k <= max_order] or [0]
     worse = 0
+    lo, hi = prof.u_range
+    xi = (prof.u - 0.5 * (lo + hi)) / max(0.5 * (hi - lo), 1e-9)
     for k in orders:
-        fit = fit_profile(prof, omega0=omega0, order=k, sigma=sigma)
+        if phi is None:
+            fit = fit_profile(prof, omega0=omega0, order=k, sigma=sigma)
+            chi2 = fit.chi2
+        else:
+            fit = None
+            basis, g, psi = _design(prof, k, xi, omega0, kappa, phi)
+            r = _solve_linear(prof, 1.0 / sigma, basis, g, psi, prof.n_strips)[2]
+            chi2 = float(r @ r)
         p = 3 + 2 * prof.n_strips * (k + 1)
-        bic = fit.chi2 + p * np.log(m)
+        bic = chi2 + p * np.log(m)
         if best is None or bic < best[0]:
             best = (bic, k, fit)
             worse = 0
