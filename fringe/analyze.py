@@ -14,7 +14,7 @@ import numpy as np
 
 from fringe._util import FringeError, fold_angle_deg, wrap_phase
 from fringe.fit import FitResult, choose_order, fit_profile, fit_sinc2_envelope
-from fringe.orient import local_fringe_map, spectral_peak
+from fringe.orient import block_mean, local_fringe_map, spectral_peak
 from fringe.profile import Profile, pixel_coordinates, project
 from fringe.result import FringeResult
 
@@ -242,8 +242,12 @@ def analyze_image(
                         "non-finite)")
     if bad.any():
         img = np.where(bad, 0.0, img)
-    vals = img[~bad]
-    if float(vals.max() - vals.min()) == 0.0:
+    if bad.any():
+        lo_v, hi_v = float(np.min(img, where=~bad, initial=np.inf)), float(
+            np.max(img, where=~bad, initial=-np.inf))
+    else:
+        lo_v, hi_v = float(img.min()), float(img.max())
+    if hi_v - lo_v == 0.0:
         return res.fail("image is uniform (every usable pixel has the same value): "
                         "no fringe pattern")
     res.provenance.append(("region", {"width": w, "height": h, "usable_pixels": n_valid}))
@@ -422,8 +426,15 @@ def analyze_image(
     if v_raw / mtf > 1.05:
         res.warn(f"visibility {v_raw / mtf:.3f} exceeds 1: check the dark frame and any "
                  "offset (or a non-linear, e.g. sharpened, camera response)")
-    lmap = local_fringe_map(img, bad if bad.any() else None, period_px=period,
-                            orientation_deg=t_final)
+    # Curvature check on a block-averaged copy for large frames (periods of 8 px or more).
+    factor = int(min(period // 4, np.ceil(np.sqrt(h * w / 2e6)))) if period >= 8 else 1
+    if factor > 1:
+        lmap = local_fringe_map(block_mean(np.where(bad, np.mean(img[~bad]) if bad.any()
+                                                    else 0.0, img), factor), None,
+                                period_px=period / factor, orientation_deg=t_final)
+    else:
+        lmap = local_fringe_map(img, bad if bad.any() else None, period_px=period,
+                                orientation_deg=t_final)
     if lmap["n_blocks"] >= 9 and (lmap["orientation_spread_deg"] > 3.0
                                   or lmap["period_spread"] > 0.08):
         res.warn(

@@ -69,6 +69,17 @@ def _prepare(image: np.ndarray, mask: np.ndarray | None) -> np.ndarray:
     return img - level
 
 
+def block_mean(image: np.ndarray, factor: int) -> np.ndarray:
+    """Mean over non-overlapping ``factor`` x ``factor`` blocks (edges trimmed)."""
+    f = int(factor)
+    if f <= 1:
+        return np.asarray(image, dtype=np.float64)
+    h, w = np.shape(image)
+    hh, ww = (h // f) * f, (w // f) * f
+    a = np.asarray(image, dtype=np.float64)[:hh, :ww]
+    return a.reshape(hh // f, f, ww // f, f).mean(axis=(1, 3))
+
+
 def spectral_peak(
     image: np.ndarray,
     mask: np.ndarray | None = None,
@@ -108,23 +119,40 @@ def spectral_peak(
        analysis for computer-based topography and interferometry", J. Opt. Soc. Am. 72,
        156-160 (1982). doi:10.1364/JOSA.72.000156
     """
-    from scipy import fft as sfft
-
     full_h, full_w = np.shape(image)
     if max_period is None:
         max_period = min(full_h, full_w) / 3.0
-    # Large frames: the central 2048 x 2048 pixels give the first estimate (the fit that
-    # follows uses every pixel); periods longer than a third of the crop need the full frame.
-    crop = 2048
-    if (full_h > crop or full_w > crop) and max_period <= crop / 3.0:
-        r0, c0 = max(0, (full_h - crop) // 2), max(0, (full_w - crop) // 2)
-        image = np.asarray(image)[r0:r0 + crop, c0:c0 + crop]
-        mask = None if mask is None else mask[r0:r0 + crop, c0:c0 + crop]
-    elif full_h > crop or full_w > crop:
-        max_period = min(max_period, crop / 3.0)
-        r0, c0 = max(0, (full_h - crop) // 2), max(0, (full_w - crop) // 2)
-        image = np.asarray(image)[r0:r0 + crop, c0:c0 + crop]
-        mask = None if mask is None else mask[r0:r0 + crop, c0:c0 + crop]
+    crop = 1024
+    if max(full_h, full_w) <= crop:
+        return _spectral_peak_core(image, mask, min_period, max_period)
+    # Large frames: the central crop gives the first estimate for short periods (the fit
+    # that follows uses every pixel); a block-averaged copy of the whole frame covers
+    # periods too long for the crop.
+    r0, c0 = max(0, (full_h - crop) // 2), max(0, (full_w - crop) // 2)
+    sub = np.asarray(image)[r0:r0 + crop, c0:c0 + crop]
+    sub_mask = None if mask is None else mask[r0:r0 + crop, c0:c0 + crop]
+    crop_max = min(sub.shape) / 3.0
+    best = _spectral_peak_core(sub, sub_mask, min_period, min(max_period, crop_max))
+    if max_period > crop_max:
+        factor = int(np.ceil(max(full_h, full_w) / crop))
+        prepared = _prepare(image, mask) if mask is not None and mask.any() else image
+        binned = block_mean(prepared, factor)
+        lo = max(min_period, 0.8 * crop_max) / factor
+        pk = _spectral_peak_core(binned, None, max(lo, 2.0), max_period / factor)
+        if pk.snr > best.snr:
+            second = None
+            if pk.second is not None:
+                second = dict(pk.second, period_px=pk.second["period_px"] * factor)
+            best = SpectralPeak(f_x=pk.f_x / factor, f_row=pk.f_row / factor,
+                                period_px=pk.period_px * factor,
+                                orientation_deg=pk.orientation_deg, snr=pk.snr,
+                                second=second)
+    return best
+
+
+def _spectral_peak_core(image, mask, min_period, max_period) -> SpectralPeak:
+    from scipy import fft as sfft
+
     img = _prepare(image, mask)
     h, w = img.shape
     wy = np.hanning(h + 2)[1:-1]
