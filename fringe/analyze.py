@@ -13,7 +13,14 @@ from typing import Any
 import numpy as np
 
 from fringe._util import FringeError, fold_angle_deg, wrap_phase
-from fringe.fit import FitResult, choose_order, fit_profile, fit_sinc2_envelope
+from fringe.fit import (
+    FitResult,
+    basis_candidates,
+    choose_basis,
+    fit_pooled_envelope,
+    fit_profile,
+    fit_sinc2_envelope,
+)
 from fringe.orient import block_mean, local_fringe_map, spectral_peak
 from fringe.profile import Profile, pixel_coordinates, project
 from fringe.result import FringeResult
@@ -134,38 +141,48 @@ def _bin_sigma(prof: Profile, noise: NoiseModel | None) -> np.ndarray:
     return np.sqrt(noise.variance(smooth) / prof.count)
 
 
-def _pooled_envelope(fit: FitResult, prof: Profile):
-    """Background S and amplitude A pooled over strips, at the peak of the envelope.
+def _strip_amplitudes(prof: Profile, fit: FitResult) -> np.ndarray:
+    """Fringe amplitude in each strip with the fringe frequency and phase held."""
+    g = np.exp(-0.5 * fit.omega**2 * prof.u_var)
+    psi = fit.omega * prof.u + fit.kappa * prof.v + fit.phi
+    out = np.full(prof.n_strips, np.nan)
+    bounds = np.searchsorted(prof.strip, np.arange(prof.n_strips + 1))
+    for j in range(prof.n_strips):
+        sel = slice(int(bounds[j]), int(bounds[j + 1]))
+        if sel.stop - sel.start < 8:
+            continue
+        w = np.sqrt(prof.count[sel])
+        des = np.vstack([np.ones(sel.stop - sel.start), g[sel] * np.cos(psi[sel]),
+                         g[sel] * np.sin(psi[sel])]).T * w[:, None]
+        coef = np.linalg.lstsq(des, prof.mean[sel] * w, rcond=None)[0]
+        out[j] = float(np.hypot(coef[1], coef[2]))
+    return out
 
-    The strips are pooled with fixed weights (their pixel counts), so that a constant
-    envelope stays constant; the peak is searched over the u range where the region
-    is at least half as long along the fringes as at its longest.
+
+def _pooled_envelope(fit: FitResult, prof: Profile, sigma: np.ndarray):
+    """Background S and amplitude A of the integrated (single-strip) profile at the peak
+    of the fringe envelope, with the 1-sigma uncertainty of V = A/S there.
+
+    The fringe frequency and phase are held at the strip fit's values (the visibility's
+    dependence on them is of second order); the Legendre series of the pooled profile
+    are solved linearly with their covariance.
     """
-    from numpy.polynomial import legendre as leg
-
-    k1 = fit.order + 1
-    wj = np.bincount(prof.strip, weights=prof.count, minlength=prof.n_strips)
-    wj = wj / wj.sum()
-    a_pool = wj @ fit.a
-    b_pool = wj @ fit.b
-    kb = np.floor((prof.u - prof.u_range[0]) / prof.bin_width).astype(np.int64)
-    kb = np.clip(kb, 0, None)
-    cnt = np.bincount(kb, weights=prof.count)
-    u_bin = np.bincount(kb, weights=prof.count * prof.u)
-    ok = cnt > 0
-    u_bin = u_bin[ok] / cnt[ok]
-    eligible = cnt[ok] >= 0.5 * np.max(cnt[ok])
-    u_grid = u_bin[eligible] if eligible.any() else u_bin
-    basis = leg.legvander(fit.xi(u_grid), fit.order)
-    s_curve = basis @ a_pool
-    a_curve = basis @ b_pool
+    env_basis, a, b, cov = fit_pooled_envelope(prof, omega=fit.omega, kappa=fit.kappa,
+                                               phi=fit.phi, n_basis=fit.n_basis, sigma=sigma)
+    eligible = prof.count >= 0.5 * np.max(prof.count)
+    u_grid = prof.u[eligible] if eligible.any() else prof.u
+    basis = env_basis.matrix(u_grid)
+    s_curve = basis @ a
+    a_curve = basis @ b
     kstar = int(np.argmax(a_curve))
+    s_pk, a_pk = float(s_curve[kstar]), float(a_curve[kstar])
     lk = basis[kstar]
-    grad_a = wj[:, None] * lk[None, :]
-    grad_b = wj[:, None] * lk[None, :]
-    assert grad_a.shape == (prof.n_strips, k1)
-    return (float(s_curve[kstar]), float(a_curve[kstar]), grad_a, grad_b,
-            float(u_grid[kstar]), s_curve, a_curve)
+    if s_pk > 0:
+        grad = np.concatenate([-a_pk / s_pk**2 * lk, lk / s_pk])
+        v_err = float(np.sqrt(max(grad @ cov @ grad, 0.0)))
+    else:
+        v_err = float("nan")
+    return s_pk, a_pk, v_err, float(u_grid[kstar]), s_curve, a_curve
 
 
 def analyze_image(
@@ -176,7 +193,7 @@ def analyze_image(
     min_snr: float = DEFAULT_MIN_SNR,
     orientation_deg: float | None = None,
     period_px: float | None = None,
-    max_order: int | None = None,
+    max_envelope_terms: int | None = None,
     result: FringeResult | None = None,
 ) -> FringeResult:
     """Measure the fringes of one calibrated 2-D image.
@@ -195,9 +212,9 @@ def analyze_image(
     orientation_deg, period_px : float, optional
         Known geometry (e.g. from the first frame of a stack): the spectral search is
         skipped and the fit starts there.
-    max_order : int, optional
-        Highest Legendre order for the background and envelope (default from the number
-        of fringes, at most 12).
+    max_envelope_terms : int, optional
+        Largest number of envelope functions tried (default: as many as keep the spline
+        knots 2.5 periods apart).
     result : FringeResult, optional
         Result to fill in (carrying file, frame and calibration provenance).
 
@@ -206,7 +223,7 @@ def analyze_image(
     FringeResult
         ``orientation_deg``, ``period_px``, ``phase_rad``, ``visibility``,
         ``visibility_raw`` with ``_err`` partners, and ``snr``, ``spectral_snr``,
-        ``mean_level``, ``amplitude``, ``fringes_in_region``, ``envelope_order``,
+        ``mean_level``, ``amplitude``, ``fringes_in_region``, ``envelope_terms``,
         ``chi2_red``.
 
     Notes
@@ -269,9 +286,13 @@ def analyze_image(
         t0, p0 = fold_angle_deg(orientation_deg), float(period_px)
     res.provenance.append(("spectrum", {"orientation_deg": t0, "period_px": p0,
                                         "snr": peak.snr}))
-    if peak.second is not None and peak.second["snr"] >= min_snr and (
-        peak.second["relative_amplitude"] >= 0.25
-    ):
+    second = peak.second
+    if second is not None:
+        d_angle = abs((second["orientation_deg"] - t0 + 90.0) % 180.0 - 90.0)
+        # A second pattern, not the envelope's own low-frequency structure or sidebands.
+        crossed = (second["snr"] >= min_snr and second["relative_amplitude"] >= 0.25
+                   and d_angle >= 5.0 and second["period_px"] < 2.5 * p0)
+    if second is not None and crossed:
         s = peak.second
         res.warn(
             f"crossed fringes: a second pattern (period {s['period_px']:.2f} px, orientation "
@@ -291,18 +312,17 @@ def analyze_image(
         n_bins = extent_u / bin_width
         if n_bins * n_strips > max_rows:
             n_strips = max(2, int(max_rows // n_bins)) if extent_v >= 32 else 1
-    fringes = extent_u / p0
-    if max_order is None:
-        max_order = int(np.clip(np.floor(fringes / 1.5), 0, 12))
 
     # 3. First fit, equal pixel weights, to refine the orientation and model the noise.
     omega0 = 2 * np.pi / p0
     row_step = max(1, int(h * w // 2_000_000))
     prof = project(img, bad, orientation_deg=t0, bin_width=bin_width, n_strips=n_strips,
                    variance=variance, row_step=row_step)
-    k_first = min(2, max_order)
+    candidates = basis_candidates(prof.u_range, p0)
+    if max_envelope_terms is not None:
+        candidates = [n for n in candidates if n <= max_envelope_terms] or [1]
     try:
-        fit1 = fit_profile(prof, omega0=omega0, order=k_first,
+        fit1 = fit_profile(prof, omega0=omega0, n_basis=min(3, candidates[-1]),
                            sigma=_bin_sigma(prof, None) if variance is None else None)
     except (np.linalg.LinAlgError, ValueError) as exc:
         return res.fail(f"fringe fit failed: {exc}")
@@ -319,15 +339,18 @@ def analyze_image(
     prof1 = prof2.pooled()
     # Order by BIC with the fringe frequency and phase of the first fit held (rotated
     # into the new projection: the phase at the centre is unchanged).
-    order, _ = choose_order(prof1, omega0=omega1, sigma=_bin_sigma(prof1, noise),
-                            max_order=max_order, kappa=0.0, phi=fit1.phi)
+    n_basis = choose_basis(prof1, omega=omega1, kappa=0.0, phi=fit1.phi,
+                           sigma=_bin_sigma(prof1, noise), candidates=candidates)
     try:
-        fit = fit_profile(prof2, omega0=omega1, order=order, sigma=_bin_sigma(prof2, noise))
-        if variance is None and noise.beta > 0:
-            # Weights from the model, not the data: data-derived weights bias the level.
+        fit = fit_profile(prof2, omega0=omega1, n_basis=n_basis,
+                          sigma=_bin_sigma(prof2, noise))
+        if variance is None:
+            # The noise again from the better model's residuals, then the final fit with
+            # weights from the model level (data-derived weights would bias the level).
+            noise = _noise_from_residuals(img, bad, fit, prof2)
             level = fit.model(prof2.u, prof2.v, prof2.strip, prof2.u_var)
             sig2 = np.sqrt(noise.variance(level) / prof2.count)
-            fit = fit_profile(prof2, omega0=fit.omega, order=order, sigma=sig2,
+            fit = fit_profile(prof2, omega0=fit.omega, n_basis=n_basis, sigma=sig2,
                               kappa0=fit.kappa)
     except (np.linalg.LinAlgError, ValueError) as exc:
         return res.fail(f"fringe fit failed: {exc}")
@@ -357,17 +380,35 @@ def analyze_image(
         t_final = 0.0
         phi = -phi
 
-    s_pk, a_pk, grad_a, grad_b, u_star, s_curve, a_curve = _pooled_envelope(fit, prof2)
-    k1 = fit.order + 1
-    nstr = prof2.n_strips
+    # The envelope peak along the fringes: pool the strips whose fringe amplitude is at
+    # least half the largest (all of them for a pattern filling the region).
+    mat = fit.basis.matrix(prof2.u)
+    amp_bins = np.einsum("ik,ik->i", mat, fit.b[prof2.strip]) * prof2.count
+    strip_amp = (np.bincount(prof2.strip, weights=amp_bins, minlength=prof2.n_strips)
+                 / np.maximum(np.bincount(prof2.strip, weights=prof2.count,
+                                          minlength=prof2.n_strips), 1e-300))
+    bright = np.nonzero(strip_amp >= 0.5 * strip_amp.max())[0]
+    prof_v = prof1
+    if bright.size < prof2.n_strips:
+        # The fringes fade along their length (a beam spot): find the brightest band in
+        # fine strips and take the visibility there.
+        n_fine = int(np.clip(extent_v // 6, prof2.n_strips, 400))
+        fine = project(img, bad, orientation_deg=t1, bin_width=bin_width, n_strips=n_fine,
+                       variance=variance)
+        amp_fine = _strip_amplitudes(fine, fit)
+        band = np.nonzero(amp_fine >= 0.9 * np.nanmax(amp_fine))[0]
+        bright = band
+        prof_v = fine.subset(band).pooled()
+    s_pk, a_pk, v_raw_err, u_star, s_curve, a_curve = _pooled_envelope(
+        fit, prof_v, _bin_sigma(prof_v, noise))
+    if bright.size < prof2.n_strips:
+        res.provenance.append(("envelope_along_fringes",
+                               {"strips_used": [int(j) for j in bright],
+                                "strips": prof2.n_strips}))
     if s_pk <= 0:
         return res.fail(f"mean level at the fringe envelope peak is {s_pk:.3g}, not positive "
                         "(is the dark frame right?)")
     v_raw = a_pk / s_pk
-    grad = np.zeros(fit.cov.shape[0])
-    grad[3:3 + nstr * k1] = (-a_pk / s_pk**2) * grad_a.ravel()
-    grad[3 + nstr * k1:] = grad_b.ravel() / s_pk
-    v_raw_err = float(np.sqrt(max(grad @ fit.cov @ grad, 0.0)))
     tr = np.deg2rad(t_final)
     mtf = float(np.sinc(np.cos(tr) / period) * np.sinc(np.sin(tr) / period))
     sigma_pix = float(np.sqrt(noise.variance(s_pk)))
@@ -383,16 +424,16 @@ def analyze_image(
     res.set("pixel_noise", sigma_pix)
     res.set("pixel_mtf", mtf)
     res.set("fringes_in_region", float(extent_u / period))
-    res.set("envelope_order", int(fit.order))
+    res.set("envelope_terms", int(fit.n_basis))
     res.set("chi2_red", fit.chi2_red)
-    res.provenance.append(("fit", {"model": "Legendre background and envelope",
-                                   "order": fit.order, "strips": nstr,
+    res.provenance.append(("fit", {"envelope": fit.basis.describe(),
+                                   "strips": prof2.n_strips,
                                    "bin_width_px": bin_width, "chi2_red": fit.chi2_red,
                                    "noise": noise.as_dict()}))
 
     # Single-slit (sinc²) envelope, when the envelope is resolved in the region.
     u_env = u_star
-    if fit.order >= 2 and extent_u / period >= 6 and np.min(a_curve) < 0.5 * np.max(a_curve):
+    if fit.n_basis >= 3 and extent_u / period >= 6 and np.min(a_curve) < 0.5 * np.max(a_curve):
         env = fit_sinc2_envelope(prof1, omega=fit.omega, kappa=fit.kappa, phi=fit.phi,
                                  sigma=_bin_sigma(prof1, noise), u_peak=u_star)
         if env is not None and env.width_err < 0.2 * env.width:
@@ -421,8 +462,11 @@ def analyze_image(
     if v_raw_err > 0.2 * max(abs(v_raw), 1e-12) or phi_err > 0.5:
         res.warn("low SNR: the visibility or phase uncertainty is large")
     if fit.cov_scale > 2.0:
-        res.warn(f"the model describes the profile poorly (reduced chi-square "
-                 f"{fit.chi2_red:.1f}); uncertainties were scaled up accordingly")
+        sig_bin = float(np.median(_bin_sigma(prof1, noise)))
+        misfit = np.sqrt(max(fit.chi2_red - 1.0, 0.0)) * sig_bin / max(abs(a_pk), 1e-300)
+        res.warn(f"the profile departs from the model by more than its noise (reduced "
+                 f"chi-square {fit.chi2_red:.1f}, about {100 * misfit:.2g} % of the fringe "
+                 "amplitude); uncertainties were scaled up accordingly")
     if v_raw / mtf > 1.05:
         res.warn(f"visibility {v_raw / mtf:.3f} exceeds 1: check the dark frame and any "
                  "offset (or a non-linear, e.g. sharpened, camera response)")
@@ -507,7 +551,7 @@ def _calibration(dark: Any, flat: Any, options: dict):
     return cal
 
 
-_ANALYZE_OPTS = ("min_snr", "orientation_deg", "period_px", "max_order")
+_ANALYZE_OPTS = ("min_snr", "orientation_deg", "period_px", "max_envelope_terms")
 
 
 def _measure_frame(frame, cal, roi, options, infer_fn=None) -> FringeResult:
@@ -636,7 +680,7 @@ def measure(
     **options
         ``channel`` ("auto", "luma", "red", "green", "blue"), ``srgb`` ("auto", True,
         False), ``frame`` (index in a stack), ``min_snr``, ``orientation_deg`` and
-        ``period_px`` (known geometry), ``max_order``, ``gain_e_per_dn`` and
+        ``period_px`` (known geometry), ``max_envelope_terms``, ``gain_e_per_dn`` and
         ``read_noise_dn`` (camera noise model), ``reject_cosmics``, and the geometry
         options of `fringe.infer` (``pixel_um``, ``distance_mm``, ...).
 

@@ -249,7 +249,7 @@ def _write_master(path: str, data, description: dict) -> None:
 
     tmp = path + ".part"
     tifffile.imwrite(tmp, np.asarray(data, dtype=np.float32),
-                     description=json.dumps(description))
+                     description=json.dumps(description), metadata=None)
     os.replace(tmp, path)
 
 
@@ -270,7 +270,7 @@ def _cmd_calib(args: argparse.Namespace, out, err) -> int:
             stack = io.read_stack(args.frames, channel=args.channel)
             master, master_err = calibrate.master_dark(stack, method=method)
             _write_master(args.output, master, {"fringe": "master dark", "frames": len(stack),
-                                                "method": method, "files": args.frames})
+                                                "method": method})
             out.write(f"master dark from {len(stack)} frames ({method}): mean "
                       f"{float(np.mean(master)):.2f} DN, median uncertainty "
                       f"{float(np.median(master_err)):.3f} DN -> {args.output}\n")
@@ -283,8 +283,7 @@ def _cmd_calib(args: argparse.Namespace, out, err) -> int:
                 dark = calibrate.master_dark(dstack)[0] if len(dstack) > 1 else dstack[0]
             flat, flat_err, flat_bad = calibrate.master_flat(stack, dark=dark, method=method)
             _write_master(args.output, flat, {"fringe": "master flat", "frames": len(stack),
-                                              "method": method, "files": args.frames,
-                                              "darks": args.dark})
+                                              "method": method, "darks": len(args.dark)})
             out.write(f"master flat from {len(stack)} frames ({method}), unit mean; "
                       f"{int(flat_bad.sum())} unusable pixels; pixel-to-pixel spread "
                       f"{100 * float(np.std(flat[~flat_bad])):.2f} % -> {args.output}\n")

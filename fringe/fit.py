@@ -3,19 +3,21 @@
 The model for a bin i in strip j, holding pixels with mean coordinates (u_i, v_i) and
 within-bin variance var_i of u, is
 
-    m_i = S_j(xi_i) + g_i A_j(xi_i) cos(omega u_i + kappa v_i + phi),
+    m_i = S_j(u_i) + g_i A_j(u_i) cos(omega u_i + kappa v_i + phi),
     g_i = exp(-omega^2 var_i / 2),
 
-where S_j and A_j are Legendre series of order K in the normalised coordinate xi
-(the background-plus-envelope and the fringe amplitude, slowly varying), omega = 2 pi / P
-along the projection normal, kappa a small phase gradient along the fringes (a rotation
-of the true normal against the projection direction) and phi the phase at the reference
-point. g_i is the mean of the cosine over the pixels of the bin (second order in the
-u spread, exact for a Gaussian spread).
+where S_j and A_j are slowly varying functions (the background-plus-envelope and the
+fringe amplitude) expanded in an `EnvelopeBasis`: Legendre polynomials for up to four
+terms, cubic B-splines with knots at least 2.5 periods apart beyond that (they follow
+single-slit envelopes with zeros and side lobes without the wild swings of high-order
+polynomials). omega = 2 pi / P along the projection normal, kappa is a small phase
+gradient along the fringes (a rotation of the true normal against the projection
+direction) and phi the phase at the reference point. g_i is the mean of the cosine over
+the pixels of the bin (second order in the u spread, exact for a Gaussian spread).
 
-The three nonlinear parameters are found by variable projection (the linear series
-coefficients are solved exactly for every trial), then the full covariance of all
-parameters comes from the weighted Jacobian at the solution.
+The three nonlinear parameters are found by variable projection (the linear
+coefficients are solved exactly for every trial); their covariance is the inverse of the
+Schur complement of the full Gauss-Newton information matrix, strip by strip.
 """
 
 from __future__ import annotations
@@ -27,26 +29,84 @@ from numpy.polynomial import legendre as _leg
 
 from fringe.profile import Profile
 
-__all__ = ["FitResult", "fit_profile", "choose_order"]
+__all__ = ["EnvelopeBasis", "FitResult", "fit_profile", "choose_basis", "basis_candidates",
+           "fit_pooled_envelope", "EnvelopeFit", "fit_sinc2_envelope", "local_visibility"]
+
+
+class EnvelopeBasis:
+    """Slowly varying functions of u over a fixed range.
+
+    Parameters
+    ----------
+    n : int
+        Number of functions: Legendre polynomials P_0..P_{n-1} for n <= 4, otherwise
+        cubic B-splines with n - 4 uniformly spaced interior knots.
+    u_range : (float, float)
+        Range of u covered by the data.
+
+    References
+    ----------
+    .. [1] C. de Boor, A Practical Guide to Splines, Springer (1978), ch. IX.
+    """
+
+    def __init__(self, n: int, u_range: tuple[float, float]):
+        self.n = int(max(1, n))
+        self.lo, self.hi = float(u_range[0]), float(u_range[1])
+        self.kind = "legendre" if self.n <= 4 else "bspline"
+        if self.kind == "bspline":
+            inner = np.linspace(self.lo, self.hi, self.n - 2)
+            self.knots = np.concatenate([[self.lo] * 3, inner, [self.hi] * 3])
+
+    @property
+    def spacing(self) -> float:
+        """Knot spacing (px) of the B-splines; the full range for polynomials."""
+        if self.kind == "legendre":
+            return self.hi - self.lo
+        return (self.hi - self.lo) / (self.n - 3)
+
+    def matrix(self, u: np.ndarray) -> np.ndarray:
+        """Values of every function at ``u``, shape (len(u), n)."""
+        u = np.asarray(u, dtype=np.float64)
+        if self.kind == "legendre":
+            xi = (u - 0.5 * (self.lo + self.hi)) / max(0.5 * (self.hi - self.lo), 1e-9)
+            return _leg.legvander(xi, self.n - 1)
+        from scipy.interpolate import BSpline
+
+        uc = np.clip(u, self.lo, self.hi)
+        return BSpline.design_matrix(uc, self.knots, 3).toarray()
+
+    def describe(self) -> str:
+        if self.kind == "legendre":
+            return f"Legendre polynomials, order {self.n - 1}"
+        return f"cubic B-splines, {self.n} functions, knots every {self.spacing:.1f} px"
+
+
+def basis_candidates(u_range: tuple[float, float], period: float) -> list[int]:
+    """Numbers of envelope functions to try: knots never closer than 2.5 periods."""
+    span = max(u_range[1] - u_range[0], 1e-9)
+    n_max = 4 + int(np.floor(span / (2.5 * period))) - 1
+    base = [1, 2, 3, 4, 6, 8, 11, 15, 20, 27, 36, 48, 64]
+    out = [n for n in base if n <= 4 or n <= n_max]
+    return out
 
 
 @dataclass
 class FitResult:
-    """Parameters, covariance and fit statistics of the fringe model.
+    """Parameters, covariance and statistics of the fringe model.
 
     Attributes
     ----------
     omega, kappa, phi : float
         Nonlinear parameters (rad/px, rad/px, rad).
-    a, b : (J, K+1) ndarray
-        Legendre coefficients of S_j and A_j in each strip.
-    cov : (3 + 2 J (K+1), 3 + 2 J (K+1)) ndarray
-        Covariance of ``[omega, kappa, phi, a.ravel(), b.ravel()]``, scaled by the reduced
-        chi-square when that exceeds one.
+    a, b : (J, n) ndarray
+        Coefficients of S_j and A_j in each strip (zero for functions a strip does not
+        support).
+    cov : (3, 3) ndarray
+        Covariance of (omega, kappa, phi), marginal over the linear coefficients, scaled
+        by max(1, chi²/dof).
     chi2, dof : float, int
         Weighted residual sum of squares and degrees of freedom.
-    order : int
-        Legendre order K.
+    basis : EnvelopeBasis
     """
 
     omega: float
@@ -57,8 +117,7 @@ class FitResult:
     cov: np.ndarray
     chi2: float
     dof: int
-    order: int
-    xi_scale: tuple[float, float]
+    basis: EnvelopeBasis
     kappa_free: bool
     cov_scale: float = 1.0
     warnings: list[str] = field(default_factory=list)
@@ -67,46 +126,19 @@ class FitResult:
     def chi2_red(self) -> float:
         return self.chi2 / max(self.dof, 1)
 
-    def xi(self, u: np.ndarray) -> np.ndarray:
-        mid, half = self.xi_scale
-        return (np.asarray(u, dtype=np.float64) - mid) / half
+    @property
+    def n_basis(self) -> int:
+        return self.basis.n
 
     def model(self, u: np.ndarray, v: np.ndarray, strip: np.ndarray,
               u_var: np.ndarray | None = None) -> np.ndarray:
         """Evaluate the model at coordinates (pixels when ``u_var`` is None)."""
-        basis = _leg.legvander(self.xi(u), self.order)
-        s = np.einsum("ik,ik->i", basis, self.a[strip])
-        amp = np.einsum("ik,ik->i", basis, self.b[strip])
+        mat = self.basis.matrix(u)
+        s = np.einsum("ik,ik->i", mat, self.a[strip])
+        amp = np.einsum("ik,ik->i", mat, self.b[strip])
         psi = self.omega * u + self.kappa * v + self.phi
         g = 1.0 if u_var is None else np.exp(-0.5 * self.omega**2 * u_var)
         return s + g * amp * np.cos(psi)
-
-
-def _design(prof: Profile, order: int, xi: np.ndarray, omega: float, kappa: float,
-            phi: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    basis = _leg.legvander(xi, order)
-    g = np.exp(-0.5 * omega**2 * prof.u_var)
-    psi = omega * prof.u + kappa * prof.v + phi
-    return basis, g, psi
-
-
-def _solve_linear(prof, weights, basis, g, psi, n_strips):
-    """Per strip, the weighted linear least-squares solution for (a_j, b_j)."""
-    k1 = basis.shape[1]
-    a = np.zeros((n_strips, k1))
-    b = np.zeros((n_strips, k1))
-    resid = np.empty_like(prof.mean)
-    cosp = g * np.cos(psi)
-    for j, sel in enumerate(_strip_slices(prof, n_strips)):
-        if sel.stop <= sel.start:
-            continue
-        w = weights[sel]
-        design = np.hstack([basis[sel], basis[sel] * cosp[sel, None]]) * w[:, None]
-        target = prof.mean[sel] * w
-        coef = _lsq(design, target)
-        a[j], b[j] = coef[:k1], coef[k1:]
-        resid[sel] = target - design @ coef
-    return a, b, resid
 
 
 def _strip_slices(prof: Profile, n_strips: int) -> list[slice]:
@@ -115,55 +147,98 @@ def _strip_slices(prof: Profile, n_strips: int) -> list[slice]:
     return [slice(int(bounds[j]), int(bounds[j + 1])) for j in range(n_strips)]
 
 
+def _active_columns(prof: Profile, basis: EnvelopeBasis, mat: np.ndarray) -> np.ndarray:
+    """Which basis functions each strip can support (J, n) bool.
+
+    Legendre: strips covering only part of the u range (corners of a rotated region)
+    get a proportionally lower order. B-splines: functions with little support among
+    the strip's bins are left out.
+    """
+    n_strips = prof.n_strips
+    active = np.zeros((n_strips, basis.n), dtype=bool)
+    span = max(basis.hi - basis.lo, 1e-9)
+    for j, sel in enumerate(_strip_slices(prof, n_strips)):
+        if sel.stop <= sel.start:
+            continue
+        if basis.kind == "legendre":
+            cover = (prof.u[sel.stop - 1] - prof.u[sel.start] + prof.bin_width) / span
+            k = int(np.clip(np.floor((basis.n - 1) * cover + 0.25), 0, basis.n - 1))
+            active[j, :k + 1] = True
+        else:
+            colsum = mat[sel].sum(axis=0)
+            active[j] = colsum >= 0.2 * colsum.max()
+    return active
+
+
 def _lsq(design: np.ndarray, target: np.ndarray) -> np.ndarray:
-    """Linear least squares by the normal equations (well conditioned: Legendre basis),
-    falling back to an SVD solution when they are singular."""
+    """Linear least squares by the normal equations (well-conditioned bases), falling
+    back to an SVD solution when they are singular."""
+    from scipy.linalg import LinAlgError as _SciErr
+    from scipy.linalg import cho_factor, cho_solve
+
     gram = design.T @ design
     rhs = design.T @ target
     try:
-        from scipy.linalg import LinAlgError as _SciErr
-        from scipy.linalg import cho_factor, cho_solve
-
         return cho_solve(cho_factor(gram, check_finite=False), rhs, check_finite=False)
     except (np.linalg.LinAlgError, _SciErr, ValueError):
         return np.linalg.lstsq(design, target, rcond=None)[0]
 
 
-def _initial_phase(prof, weights, xi, order, omega, kappa, n_strips):
-    """Phase (and along-fringe gradient) from a linear fit with cos and sin terms."""
-    basis = _leg.legvander(xi, order)
+def _solve_linear(prof, weights, mat, g, psi, active):
+    """Per strip, the weighted linear least-squares solution for (a_j, b_j)."""
+    n_strips, n = active.shape
+    a = np.zeros((n_strips, n))
+    b = np.zeros((n_strips, n))
+    resid = np.empty_like(prof.mean)
+    cosp = g * np.cos(psi)
+    for j, sel in enumerate(_strip_slices(prof, n_strips)):
+        if sel.stop <= sel.start:
+            continue
+        cols = active[j]
+        w = weights[sel]
+        bs = mat[sel][:, cols]
+        design = np.hstack([bs, bs * cosp[sel, None]]) * w[:, None]
+        target = prof.mean[sel] * w
+        coef = _lsq(design, target)
+        k = int(cols.sum())
+        a[j, cols], b[j, cols] = coef[:k], coef[k:]
+        resid[sel] = target - design @ coef
+    return a, b, resid
+
+
+def _initial_phase(prof, weights, mat, active, omega, kappa):
+    """Phase (and along-fringe phase gradient) from a linear fit with cos and sin terms."""
+    n_strips = prof.n_strips
     g = np.exp(-0.5 * omega**2 * prof.u_var)
     psi = omega * prof.u + kappa * prof.v
-    k1 = basis.shape[1]
     z_strip = np.zeros(n_strips, dtype=complex)
     v_strip = np.zeros(n_strips)
     n_tot = np.zeros(n_strips)
-    for j in range(n_strips):
-        sel = prof.strip == j
-        if sel.sum() < 3 * k1 + 2:
+    for j, sel in enumerate(_strip_slices(prof, n_strips)):
+        cols = active[j]
+        k = int(cols.sum())
+        if sel.stop - sel.start < 3 * k + 2:
             continue
         w = weights[sel]
         c = g[sel] * np.cos(psi[sel])
         s = g[sel] * np.sin(psi[sel])
-        bj = basis[sel]
+        bj = mat[sel][:, cols]
         design = np.hstack([bj, bj * c[:, None], bj * s[:, None]]) * w[:, None]
-        coef, *_ = np.linalg.lstsq(design, prof.mean[sel] * w, rcond=None)
-        cc, ss = coef[k1:2 * k1], coef[2 * k1:]
+        coef = _lsq(design, prof.mean[sel] * w)
+        cc, ss = coef[k:2 * k], coef[2 * k:]
         # A cos(psi + phi) = A cos(phi) cos(psi) - A sin(phi) sin(psi)
         zc = (bj @ cc) - 1j * (bj @ ss)
         z_strip[j] = np.sum(zc * prof.count[sel])
         v_strip[j] = np.average(prof.v[sel], weights=prof.count[sel])
         n_tot[j] = prof.count[sel].sum()
     good = n_tot > 0
-    total = z_strip[good].sum()
-    phi0 = float(np.angle(total))
+    phi0 = float(np.angle(z_strip[good].sum())) if good.any() else 0.0
     dkappa = 0.0
     if good.sum() >= 2:
         ph = np.unwrap(np.angle(z_strip[good] * np.exp(-1j * phi0)))
         vv = v_strip[good]
-        wts = np.abs(z_strip[good])
         if np.ptp(vv) > 0:
-            dkappa = float(np.polyfit(vv, ph, 1, w=np.sqrt(wts))[0])
+            dkappa = float(np.polyfit(vv, ph, 1, w=np.sqrt(np.abs(z_strip[good])))[0])
     return phi0, dkappa
 
 
@@ -171,7 +246,7 @@ def fit_profile(
     prof: Profile,
     *,
     omega0: float,
-    order: int = 2,
+    n_basis: int = 3,
     sigma: np.ndarray | None = None,
     kappa_free: bool | None = None,
     kappa0: float = 0.0,
@@ -185,8 +260,8 @@ def fit_profile(
         Binned profile (see `fringe.profile.project`).
     omega0 : float
         Starting angular frequency, rad/px (2 pi / period).
-    order : int
-        Legendre order K of the slowly varying background and amplitude.
+    n_basis : int
+        Number of envelope functions (see `EnvelopeBasis`).
     sigma : (M,) ndarray, optional
         Standard uncertainty of each bin mean. Default: from ``prof.var_mean`` when
         present, otherwise equal per-pixel weights (sigma proportional to 1/sqrt(count)).
@@ -202,12 +277,14 @@ def fit_profile(
 
     Notes
     -----
-    Variable projection: for every trial (omega, kappa, phi) the Legendre coefficients are
-    the exact weighted linear least-squares solution, and the nonlinear parameters are
-    iterated by the trust-region reflective method with a finite-difference Jacobian of
-    the projected residual. The covariance of all parameters is the inverse of JᵀJ of the
-    weighted residual at the solution, multiplied by max(1, chi²/dof) (the bins may be
-    noisier than the per-pixel model says, e.g. for correlated noise).
+    Variable projection: for every trial (omega, kappa, phi) the envelope coefficients
+    are the exact weighted linear least-squares solution, and the nonlinear parameters
+    are iterated by the trust-region reflective method with a finite-difference Jacobian
+    of the projected residual. The covariance of (omega, kappa, phi) is the inverse of
+    the Schur complement H = sum_j (J_t'J_t - J_t'J_l (J_l'J_l)^-1 J_l'J_t) of the
+    weighted Gauss-Newton information matrix (t: nonlinear, l: linear parameters of
+    strip j), multiplied by max(1, chi²/dof) (the bins may be noisier than the noise
+    model says, e.g. for correlated noise).
 
     References
     ----------
@@ -222,9 +299,9 @@ def fit_profile(
     n_strips = prof.n_strips
     if kappa_free is None:
         kappa_free = n_strips > 1
-    lo, hi = prof.u_range
-    xi_scale = (0.5 * (lo + hi), max(0.5 * (hi - lo), 1e-9))
-    xi = (prof.u - xi_scale[0]) / xi_scale[1]
+    basis = EnvelopeBasis(n_basis, prof.u_range)
+    mat = basis.matrix(prof.u)
+    active = _active_columns(prof, basis, mat)
     if sigma is None:
         if prof.var_mean is not None:
             sigma = np.sqrt(np.maximum(prof.var_mean, 1e-300))
@@ -233,7 +310,7 @@ def fit_profile(
     weights = 1.0 / sigma
 
     if phi0 is None:
-        phi0, dk = _initial_phase(prof, weights, xi, order, omega0, kappa0, n_strips)
+        phi0, dk = _initial_phase(prof, weights, mat, active, omega0, kappa0)
         if kappa_free:
             kappa0 = kappa0 + dk
 
@@ -242,86 +319,92 @@ def fit_profile(
             return theta[0], theta[1], theta[2]
         return theta[0], 0.0, theta[1]
 
+    def design(om, ka, ph):
+        g = np.exp(-0.5 * om**2 * prof.u_var)
+        psi = om * prof.u + ka * prof.v + ph
+        return g, psi
+
     def resid(theta):
         om, ka, ph = unpack(theta)
-        basis, g, psi = _design(prof, order, xi, om, ka, ph)
-        return _solve_linear(prof, weights, basis, g, psi, n_strips)[2]
+        g, psi = design(om, ka, ph)
+        return _solve_linear(prof, weights, mat, g, psi, active)[2]
 
     theta0 = np.array([omega0, kappa0, phi0] if kappa_free else [omega0, phi0])
-    span = max(hi - lo, 1.0)
+    span = max(prof.u_range[1] - prof.u_range[0], 1.0)
     scale = np.array([1.0 / span, 1.0 / span, 1.0] if kappa_free else [1.0 / span, 1.0])
     sol = least_squares(resid, theta0, x_scale=scale, method="trf", xtol=1e-12, ftol=1e-12,
                         gtol=1e-12, max_nfev=200)
     om, ka, ph = unpack(sol.x)
-    basis, g, psi = _design(prof, order, xi, om, ka, ph)
-    a, b, r = _solve_linear(prof, weights, basis, g, psi, n_strips)
+    g, psi = design(om, ka, ph)
+    a, b, r = _solve_linear(prof, weights, mat, g, psi, active)
 
-    # Make the pooled amplitude positive (the sign belongs to the phase).
-    if np.sum(b[:, 0] * np.bincount(prof.strip, weights=prof.count, minlength=n_strips)) < 0:
+    # Make the amplitude positive where the data are (the sign belongs to the phase).
+    amp_bins = np.einsum("ik,ik->i", mat, b[prof.strip])
+    if np.sum(amp_bins * prof.count) < 0:
         b = -b
         ph = ph + np.pi
         psi = psi + np.pi
+        amp_bins = -amp_bins
     ph = float(np.angle(np.exp(1j * ph)))
 
-    # Full weighted Jacobian for the covariance.
-    k1 = order + 1
-    m = prof.mean.size
-    n_par = 3 + 2 * n_strips * k1
-    jac = np.zeros((m, n_par))
-    amp = np.einsum("ik,ik->i", basis, b[prof.strip])
+    # Covariance of (omega, kappa, phi): Schur complement strip by strip.
     sinp, cosp = np.sin(psi), np.cos(psi)
-    jac[:, 0] = -g * amp * sinp * prof.u - om * prof.u_var * g * amp * cosp
-    jac[:, 1] = -g * amp * sinp * prof.v
-    jac[:, 2] = -g * amp * sinp
-    rows = np.arange(m)
-    for k in range(k1):
-        jac[rows, 3 + prof.strip * k1 + k] = basis[:, k]
-        jac[rows, 3 + n_strips * k1 + prof.strip * k1 + k] = g * basis[:, k] * cosp
+    jt = np.empty((prof.mean.size, 3))
+    jt[:, 0] = -g * amp_bins * sinp * prof.u - om * prof.u_var * g * amp_bins * cosp
+    jt[:, 1] = -g * amp_bins * sinp * prof.v if kappa_free else 0.0
+    jt[:, 2] = -g * amp_bins * sinp
+    jt *= weights[:, None]
+    info = np.zeros((3, 3))
+    n_lin = 0
+    for j, sel in enumerate(_strip_slices(prof, n_strips)):
+        if sel.stop <= sel.start:
+            continue
+        cols = active[j]
+        bs = mat[sel][:, cols]
+        jl = np.hstack([bs, bs * (g[sel] * cosp[sel])[:, None]]) * weights[sel, None]
+        n_lin += jl.shape[1]
+        tj = jt[sel]
+        cross = tj.T @ jl
+        gram = jl.T @ jl
+        try:
+            proj = cross @ np.linalg.solve(gram, cross.T)
+        except np.linalg.LinAlgError:
+            proj = cross @ np.linalg.pinv(gram) @ cross.T
+        info += tj.T @ tj - proj
     if not kappa_free:
-        jac[:, 1] = 0.0
-    jw = jac * weights[:, None]
-    used = np.any(jw != 0, axis=0)
-    info = jw[:, used].T @ jw[:, used]
+        info[1, :] = 0.0
+        info[:, 1] = 0.0
+        info[1, 1] = 1.0
     try:
-        cov_u = np.linalg.inv(info)
+        cov = np.linalg.inv(info)
     except np.linalg.LinAlgError:
-        cov_u = np.linalg.pinv(info)
-    cov = np.zeros((n_par, n_par))
-    cov[np.ix_(used, used)] = cov_u
+        cov = np.linalg.pinv(info)
+    if not kappa_free:
+        cov[1, :] = 0.0
+        cov[:, 1] = 0.0
     chi2 = float(r @ r)
-    dof = int(m - used.sum())
+    dof = int(prof.mean.size - n_lin - (3 if kappa_free else 2))
     scale_c = max(1.0, chi2 / max(dof, 1))
-    return FitResult(
-        omega=float(om),
-        kappa=float(ka),
-        phi=ph,
-        a=a,
-        b=b,
-        cov=cov * scale_c,
-        chi2=chi2,
-        dof=dof,
-        order=order,
-        xi_scale=xi_scale,
-        kappa_free=bool(kappa_free),
-        cov_scale=scale_c,
-    )
+    return FitResult(omega=float(om), kappa=float(ka), phi=ph, a=a, b=b, cov=cov * scale_c,
+                     chi2=chi2, dof=dof, basis=basis, kappa_free=bool(kappa_free),
+                     cov_scale=scale_c)
 
 
-def choose_order(
+def choose_basis(
     prof: Profile,
     *,
-    omega0: float,
+    omega: float,
+    kappa: float,
+    phi: float,
     sigma: np.ndarray,
-    max_order: int,
-    kappa: float = 0.0,
-    phi: float | None = None,
-) -> tuple[int, FitResult | None]:
-    """Choose the Legendre order by the Bayesian information criterion.
+    candidates: list[int],
+) -> int:
+    """Choose the number of envelope functions by the Bayesian information criterion.
 
-    Orders 0, 1, 2, ... up to ``max_order`` are fitted; the one with the smallest
-    chi² + p ln(M) wins (p parameters, M bins). With ``phi`` given the fringe frequency
-    and phase are held at (omega0, kappa, phi) and only the linear coefficients are
-    solved for each order (fast); otherwise each order gets a full fit.
+    Each candidate is fitted with the fringe frequency and phase held at
+    (omega, kappa, phi) and only the linear coefficients solved (fast); the smallest
+    chi² + p ln(M) wins (p parameters, M bins). The search stops after three candidates
+    in a row fail to improve.
 
     References
     ----------
@@ -330,29 +413,52 @@ def choose_order(
     """
     best = None
     m = prof.mean.size
-    orders = [k for k in (0, 1, 2, 3, 4, 5, 6, 8, 10, 12) if k <= max_order] or [0]
     worse = 0
-    lo, hi = prof.u_range
-    xi = (prof.u - 0.5 * (lo + hi)) / max(0.5 * (hi - lo), 1e-9)
-    for k in orders:
-        if phi is None:
-            fit = fit_profile(prof, omega0=omega0, order=k, sigma=sigma)
-            chi2 = fit.chi2
-        else:
-            fit = None
-            basis, g, psi = _design(prof, k, xi, omega0, kappa, phi)
-            r = _solve_linear(prof, 1.0 / sigma, basis, g, psi, prof.n_strips)[2]
-            chi2 = float(r @ r)
-        p = 3 + 2 * prof.n_strips * (k + 1)
-        bic = chi2 + p * np.log(m)
+    g = np.exp(-0.5 * omega**2 * prof.u_var)
+    psi = omega * prof.u + kappa * prof.v + phi
+    for n in candidates:
+        basis = EnvelopeBasis(n, prof.u_range)
+        mat = basis.matrix(prof.u)
+        active = _active_columns(prof, basis, mat)
+        r = _solve_linear(prof, 1.0 / sigma, mat, g, psi, active)[2]
+        p = 3 + 2 * int(active.sum())
+        bic = float(r @ r) + p * np.log(m)
         if best is None or bic < best[0]:
-            best = (bic, k, fit)
+            best = (bic, n)
             worse = 0
         else:
             worse += 1
-            if worse >= 2:
+            if worse >= 3:
                 break
-    return best[1], best[2]
+    return best[1]
+
+
+def fit_pooled_envelope(prof: Profile, *, omega: float, kappa: float, phi: float,
+                        n_basis: int, sigma: np.ndarray
+                        ) -> tuple[EnvelopeBasis, np.ndarray, np.ndarray, np.ndarray]:
+    """Background and amplitude series of a single-strip profile with the fringe held.
+
+    Returns ``(basis, a, b, cov)``: the coefficients of S(u) and A(u) and their joint
+    covariance (scaled by max(1, chi²/dof)).
+    """
+    basis = EnvelopeBasis(n_basis, prof.u_range)
+    mat = basis.matrix(prof.u)
+    g = np.exp(-0.5 * omega**2 * prof.u_var)
+    psi = omega * prof.u + kappa * prof.v + phi
+    w = 1.0 / sigma
+    design = np.hstack([mat, mat * (g * np.cos(psi))[:, None]]) * w[:, None]
+    target = prof.mean * w
+    coef = _lsq(design, target)
+    r = target - design @ coef
+    dof = max(r.size - coef.size, 1)
+    gram = design.T @ design
+    try:
+        cov = np.linalg.inv(gram)
+    except np.linalg.LinAlgError:
+        cov = np.linalg.pinv(gram)
+    cov *= max(1.0, float(r @ r) / dof)
+    n = basis.n
+    return basis, coef[:n], coef[n:], cov
 
 
 @dataclass

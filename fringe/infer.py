@@ -117,7 +117,7 @@ def pixel_scale_from_points(p1: Sequence[float], p2: Sequence[float], distance_m
     if distance_mm <= 0:
         raise FringeError(f"scale distance must be positive, got {distance_mm} mm")
     scale = distance_mm * 1000.0 / dist_px
-    return scale, scale * np.sqrt(2.0) * point_err_px / dist_px
+    return scale, float(scale * np.sqrt(2.0) * point_err_px / dist_px)
 
 
 def sin_theta_slope(y_um: np.ndarray, distance_um: float) -> float:

@@ -122,6 +122,46 @@ def spectral_peak(
     full_h, full_w = np.shape(image)
     if max_period is None:
         max_period = min(full_h, full_w) / 3.0
+    best = _spectral_peak_large(image, mask, min_period, max_period)
+    # A pattern filling only part of the frame (a laser spot on a wall) spreads its peak
+    # over many bins of the whole-frame spectrum; tiles see it concentrated.
+    if best.snr < 20.0 and min(full_h, full_w) >= 192:
+        tiled = _spectral_peak_tiles(image, mask, min_period, max_period)
+        if tiled is not None and tiled.snr > best.snr:
+            best = tiled
+    return best
+
+
+def _spectral_peak_tiles(image, mask, min_period, max_period) -> SpectralPeak | None:
+    """Strongest spectral peak over overlapping tiles of the (central) frame."""
+    h, w = np.shape(image)
+    size = int(min(256, min(h, w) // 2))
+    r0, c0 = max(0, (h - 1024) // 2), max(0, (w - 1024) // 2)
+    r1, c1 = min(h, r0 + 1024), min(w, c0 + 1024)
+    step = size // 2
+    best = None
+    tile_max = min(max_period, size / 3.0)
+    if tile_max <= min_period:
+        return None
+    for r in range(r0, max(r0 + 1, r1 - size + 1), step):
+        for c in range(c0, max(c0 + 1, c1 - size + 1), step):
+            sub = np.asarray(image)[r:r + size, c:c + size]
+            sub_mask = None if mask is None else mask[r:r + size, c:c + size]
+            if sub_mask is not None and sub_mask.mean() > 0.5:
+                continue
+            try:
+                pk = _spectral_peak_core(sub, sub_mask, min_period, tile_max)
+            except ValueError:
+                continue
+            if np.isfinite(pk.snr) and (best is None or pk.snr > best.snr):
+                best = pk
+    if best is not None:
+        best.second = None  # a tile cannot judge crossings over the whole frame
+    return best
+
+
+def _spectral_peak_large(image, mask, min_period, max_period) -> SpectralPeak:
+    full_h, full_w = np.shape(image)
     crop = 1024
     if max(full_h, full_w) <= crop:
         return _spectral_peak_core(image, mask, min_period, max_period)
@@ -306,7 +346,8 @@ def local_fringe_map(
     gx = np.angle(z[:, 1:] * np.conj(z[:, :-1]))[:-1, :] / (2 * np.pi * block)
     gr = np.angle(z[1:, :] * np.conj(z[:-1, :]))[:, :-1] / (2 * np.pi * block)
     strength = np.minimum.reduce([mag[:-1, :-1], mag[:-1, 1:], mag[1:, :-1]])
-    good = strength > 0.3 * np.median(mag) + 1e-300
+    # Blocks with a clear fringe signal only (outside an envelope the phase is noise).
+    good = strength > 0.3 * np.max(mag) + 1e-300
     if good.sum() < 4:
         return out
     fx = nx_ / period_px + gx[good]

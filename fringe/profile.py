@@ -102,6 +102,21 @@ class Profile:
         k = ((np.asarray(v) - self.v_range[0]) / span * self.n_strips).astype(np.int64)
         return np.clip(k, 0, self.n_strips - 1)
 
+    def subset(self, strips: np.ndarray) -> Profile:
+        """The bins of the given strips only (renumbered 0, 1, ...)."""
+        strips = np.asarray(sorted(set(int(j) for j in strips)), dtype=np.int64)
+        keep = np.isin(self.strip, strips)
+        remap = np.full(self.n_strips, -1, dtype=np.int64)
+        remap[strips] = np.arange(strips.size)
+        return Profile(
+            u=self.u[keep], v=self.v[keep], u_var=self.u_var[keep],
+            strip=remap[self.strip[keep]], mean=self.mean[keep], count=self.count[keep],
+            var_mean=None if self.var_mean is None else self.var_mean[keep],
+            u_range=self.u_range, v_range=self.v_range, n_strips=int(strips.size),
+            bin_width=self.bin_width, orientation_deg=self.orientation_deg,
+            centre=self.centre,
+        )
+
     def pooled(self) -> Profile:
         """The same bins summed over all strips (a single-strip profile)."""
         kb = np.floor((self.u - self.u_range[0]) / self.bin_width).astype(np.int64)
