@@ -438,6 +438,7 @@ def analyze_image(
                                  sigma=_bin_sigma(prof1, noise), u_peak=u_star)
         if env is not None and env.width_err < 0.2 * env.width:
             u_env = env.u0
+            res.context["envelope_fit"] = env
             res.set("envelope_zero_px", env.width, env.width_err)
             res.set("envelope_visibility", env.visibility, env.visibility_err)
             res.provenance.append(("envelope", {"model": "sinc2", "chi2_red":
@@ -583,6 +584,10 @@ def _measure_frame(frame, cal, roi, options, infer_fn=None) -> FringeResult:
         res.provenance.append(("roi", {"x": roi[0], "y": roi[1], "w": roi[2], "h": roi[3]}))
     analyze_image(data, mask, variance=var, result=res,
             **{k: options[k] for k in _ANALYZE_OPTS if options.get(k) is not None})
+    if (cal is None or cal.dark is None) and frame.meta.get("bit_depth") and not frame.meta.get(
+            "srgb_decoded"):
+        res.warn("no dark frame given: a camera offset or dark signal adds to the level and "
+                 "lowers the visibility (give --dark)")
     if frame.meta.get("srgb_decoded"):
         res.warn("8-bit sRGB input decoded to linear light; phone processing (tone curves, "
                  "sharpening) can still bias the visibility")

@@ -591,12 +591,14 @@ def local_visibility(
     phi: float,
     sigma: np.ndarray,
     window_px: float,
+    background: float = 0.0,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Visibility in windows along the profile (fringe frequency and phase held fixed).
 
     In each window of ``window_px`` (a few periods) a linear least-squares fit of
-    ``c0 + c1 g cos(psi) + c2 g sin(psi)`` gives V = hypot(c1, c2)/c0 and its
-    uncertainty by first-order propagation of the fit covariance.
+    ``c0 + c1 g cos(psi) + c2 g sin(psi)`` gives V = hypot(c1, c2)/(c0 - background) and
+    its uncertainty by first-order propagation of the fit covariance. ``background`` is
+    a level under the two-beam pattern (camera offset, ambient light) to be removed.
 
     Returns
     -------
@@ -623,6 +625,7 @@ def local_visibility(
         except np.linalg.LinAlgError:
             continue
         c0, c1, c2 = coef
+        c0 = c0 - background
         if c0 <= 0:
             continue
         amp = float(np.hypot(c1, c2))

@@ -476,8 +476,17 @@ def infer_into(res: FringeResult, **geom: Any) -> FringeResult:
                       [sep[1], period[1], res.get("envelope_zero_px_err") or 0.0])
         res.set("slit_width_um", *a)
 
-    # Spatial coherence of an extended source.
+    # Spatial coherence of an extended source: the visibility of the two-beam pattern
+    # itself, i.e. with the level under the envelope (offset, ambient light) removed when
+    # the single-slit envelope fit has measured it.
     gamma = (float(res.visibility), float(res.visibility_err or 0.0))
+    env = res.context.get("envelope_fit")
+    gamma_from = "visibility"
+    if env is not None and res.get("envelope_visibility") is not None:
+        mtf = float(res.get("pixel_mtf") or 1.0)
+        gamma = (float(res.envelope_visibility) / mtf,
+                 float(res.envelope_visibility_err or 0.0) / mtf)
+        gamma_from = "envelope_visibility"
     ratio = geom.get("intensity_ratio")
     if ratio is not None:
         i1, i2 = (float(v) for v in ratio)
@@ -515,7 +524,9 @@ def infer_into(res: FringeResult, **geom: Any) -> FringeResult:
                 res.set("source_angle_mrad", ang, ang_err)
                 res.set("source_shape", shape)
                 res.warn("source size assumes the visibility loss is due to the source size "
-                         "alone (equal intensities, narrow band, no blur)")
+                         "alone (equal intensities, narrow band, no blur); it uses the "
+                         + ("visibility above the level under the envelope"
+                            if gamma_from == "envelope_visibility" else "visibility"))
             except ValueError as exc:
                 res.warn(f"source size could not be inferred: {exc}")
 
@@ -533,19 +544,27 @@ def _coherence_length(res: FringeResult, lam: Measured) -> None:
     fit = res.context["fit"]
     prof = res.context["pooled"]
     sigma = res.context["sigma_pooled"]
+    env = res.context.get("envelope_fit")
     period = float(res.period_px)
-    if res.fringes_in_region is None or res.fringes_in_region < 12:
+    # Needs the level under the pattern (from the single-slit envelope fit): without it a
+    # falling envelope over an offset or ambient light also lowers the visibility.
+    if env is None or res.fringes_in_region is None or res.fringes_in_region < 12:
         return
     u, v, e = local_visibility(prof, omega=fit.omega, kappa=fit.kappa, phi=fit.phi,
-                               sigma=sigma, window_px=3 * period)
+                               sigma=sigma, window_px=3 * period, background=env.background)
+    u_axis = float(env.u0)
+    inner = np.abs(u - u_axis) < 0.8 * env.width  # central lobe, away from the zeros
+    u, v, e = u[inner], v[inner], e[inner]
     if u.size < 4:
         return
-    u_axis = float(res.context.get("u_envelope", 0.0))
     opd_um = (u - u_axis) / period * lam[0] / 1000.0  # fringe order times wavelength
     out = coherence_length_from_visibility(opd_um, v, e)
     if out is None:
         return
-    if out.get("significant"):
+    drop = 1.0 - float(np.exp(-np.pi**2 / (4 * np.log(2.0)) * (out["dmax_um"] /
+                                                                 out.get("coherence_length_um",
+                                                                         np.inf)) ** 2))
+    if out.get("significant") and drop >= 0.03:
         lc = out["coherence_length_um"]
         lc_err = out["coherence_length_um_err"]
         res.set("coherence_length_um", lc, lc_err)
@@ -554,5 +573,5 @@ def _coherence_length(res: FringeResult, lam: Measured) -> None:
         res.set("bandwidth_nm", *bw)
         res.warn("coherence length assumes a Gaussian spectrum and that the visibility falls "
                  "across the pattern because of the bandwidth alone")
-    else:
+    elif "coherence_length_min_um" in out:
         res.set("coherence_length_min_um", out["coherence_length_min_um"])
