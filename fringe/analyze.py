@@ -255,8 +255,14 @@ def analyze_image(
         bad = bad | mask
     n_valid = int((~bad).sum())
     if n_valid < 0.25 * h * w:
-        return res.fail(f"only {n_valid} of {h * w} pixels are usable (saturated, bad or "
-                        "non-finite)")
+        n_nonfinite = int((~np.isfinite(img)).sum())
+        detail = f"{n_nonfinite} non-finite" if n_nonfinite else "saturated or bad"
+        if n_valid == 0:
+            return res.fail(f"no usable pixels: all {h * w} are {detail}"
+                            if n_nonfinite in (0, h * w) else
+                            f"no usable pixels ({n_nonfinite} non-finite, the rest saturated "
+                            "or bad)")
+        return res.fail(f"only {n_valid} of {h * w} pixels are usable (the rest {detail})")
     if bad.any():
         img = np.where(bad, 0.0, img)
     if bad.any():

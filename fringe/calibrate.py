@@ -1085,6 +1085,13 @@ def _as_list(paths: Any) -> list[str]:
     return [os.fsdecode(p) for p in paths]
 
 
+def _flat_master(fstack, fmetas, dark, method):
+    if all(_master_kind(m) == "master flat" for m in fmetas):
+        # Already dark-subtracted and normalised (written by `fringe calib flat`).
+        return master_flat(fstack, dark=None, method=method)
+    return master_flat(fstack, dark=dark, method=method)
+
+
 def _master_kind(meta: dict) -> str | None:
     """"master dark" or "master flat" for files written by ``fringe calib``, else None."""
     import json
@@ -1186,13 +1193,13 @@ def build_calibration(
                 f"{cal.dark.shape} of {ref_file}"
             )
         cal.bit_depth = _check_depths(fmetas, cal.bit_depth, ref_file)
-        if all(_master_kind(m) == "master flat" for m in fmetas):
-            # Already dark-subtracted and normalised (written by `fringe calib flat`).
-            cal.flat, cal.flat_err, cal.flat_bad = master_flat(fstack, dark=None,
-                                                               method=method)
-        else:
-            cal.flat, cal.flat_err, cal.flat_bad = master_flat(fstack, dark=cal.dark,
-                                                               method=method)
+        try:
+            _flat = _flat_master(fstack, fmetas, cal.dark, method)
+        except FringeError as exc:
+            names = ", ".join(str(m["file"]) for m in fmetas[:3])
+            more = " ..." if len(fmetas) > 3 else ""
+            raise FringeError(f"{names}{more}: {exc}") from None
+        cal.flat, cal.flat_err, cal.flat_bad = _flat
         cal.flat_files = flats
         cal.n_flat_frames = int(fstack.shape[0])
         channels |= {m["channel"] for m in fmetas}

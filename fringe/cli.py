@@ -323,7 +323,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     parser = build_parser()
     argv = list(sys.argv[1:] if argv is None else argv)
-    args = parser.parse_args(argv)
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:  # usage errors (2) and --help/--version (0)
+        return int(exc.code) if isinstance(exc.code, int) else (0 if exc.code is None else 2)
     out, err = sys.stdout, sys.stderr
     if args.command is None:
         parser.print_help(out)
@@ -340,6 +343,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         err.write("fringe: interrupted\n")
         return 130
+    except BrokenPipeError:
+        # The reader went away (e.g. `| head`): stop quietly.
+        try:
+            sys.stdout = open(os.devnull, "w")  # noqa: SIM115
+        except OSError:
+            pass
+        return 1
     except FringeError as exc:
         if args.debug:
             raise
