@@ -210,8 +210,9 @@ def analyze_image(
     min_snr : float
         Spectral SNR below which no fringe pattern is reported.
     orientation_deg, period_px : float, optional
-        Known geometry (e.g. from the first frame of a stack): the spectral search is
-        skipped and the fit starts there.
+        Known geometry (e.g. from the first frame of a stack): the fit starts there and
+        the spectral SNR threshold is not applied (the spectrum is still computed for
+        ``spectral_snr`` and the crossed-fringe check).
     max_envelope_terms : int, optional
         Largest number of envelope functions tried (default: as many as keep the spline
         knots 2.5 periods apart).
@@ -372,9 +373,11 @@ def analyze_image(
     t_final = t1 + np.rad2deg(np.arctan2(-ka, om))
     t_err = float(np.rad2deg(np.sqrt(max(g_t @ c3 @ g_t, 0.0)))) if fit.kappa_free else None
     phi = fit.phi
+    flip = 1.0  # -1 when the reported normal is opposite to the fit's projection normal
     folded = t_final % 180.0
     if (t_final - folded) % 360.0 != 0.0:
         phi = -phi  # the normal flipped sign
+        flip = -flip
     t_final = folded
     phi_err = float(np.sqrt(max(fit.cov[2, 2], 0.0)))
     if t_err is None:
@@ -385,6 +388,7 @@ def analyze_image(
         # Within the uncertainty of the fold: prefer 0 deg (normal along +x) to 179.99 deg.
         t_final = 0.0
         phi = -phi
+        flip = -flip
 
     # The envelope peak along the fringes: pool the strips whose fringe amplitude is at
     # least half the largest (all of them for a pattern filling the region).
@@ -452,7 +456,7 @@ def analyze_image(
     nx1, nr1 = np.cos(np.deg2rad(t1)), -np.sin(np.deg2rad(t1))
     res.set("envelope_centre_x_px", prof2.centre[0] + u_env * nx1)
     res.set("envelope_centre_y_px", prof2.centre[1] + u_env * nr1)
-    res.set("phase_at_envelope_rad", wrap_phase(fit.omega * u_env + fit.phi))
+    res.set("phase_at_envelope_rad", wrap_phase(flip * (fit.omega * u_env + fit.phi)))
     res.context.update({"fit": fit, "profile": prof2, "pooled": prof1, "noise": noise,
                         "u_envelope": u_env, "orientation_fit_deg": t1,
                         "sigma_pooled": _bin_sigma(prof1, noise)})

@@ -49,9 +49,10 @@ def _value_with_error(text: str) -> tuple[float, float]:
 def _add_calibration(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("calibration")
     g.add_argument("--dark", action="append", default=[], metavar="FILE",
-                   help="dark frame(s) or a master dark; repeatable, several are median-combined")
+                   help="dark frame(s) or a master dark; repeatable (a quoted pattern such as "
+                        "'dark-*.tif' also works); several are median-combined")
     g.add_argument("--flat", action="append", default=[], metavar="FILE",
-                   help="flat-field frame(s) or a master flat; repeatable")
+                   help="flat-field frame(s) or a master flat; repeatable, patterns allowed")
     g.add_argument("--gain", type=float, metavar="E_PER_DN", dest="gain_e_per_dn",
                    help="camera gain in electrons per DN (enables the shot+read noise model)")
     g.add_argument("--read-noise", type=float, metavar="DN", dest="read_noise_dn",
@@ -171,12 +172,30 @@ def _options(args: argparse.Namespace) -> dict:
     return opts
 
 
+def expand_paths(paths: Sequence[str]) -> list[str]:
+    """Expand shell-style patterns (``dark-*.tif``) that the shell left alone, in order."""
+    import glob
+
+    out: list[str] = []
+    for p in paths:
+        if any(ch in p for ch in "*?[") and not os.path.exists(p):
+            hits = sorted(glob.glob(p))
+            if not hits:
+                raise FringeError(f"{p}: no files match this pattern")
+            out.extend(hits)
+        else:
+            out.append(p)
+    return out
+
+
 def _cmd_measure(args: argparse.Namespace, out, err) -> int:
     from fringe import report
     from fringe.analyze import _calibration, measure_frames
 
     opts = _options(args)
     try:
+        args.dark = expand_paths(args.dark)
+        args.flat = expand_paths(args.flat)
         cal = _calibration(args.dark or None, args.flat or None, opts)
     except FringeError as exc:
         err.write(f"fringe: {exc}\n")
