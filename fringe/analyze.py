@@ -194,6 +194,7 @@ def analyze_image(
     orientation_deg: float | None = None,
     period_px: float | None = None,
     max_envelope_terms: int | None = None,
+    fast: bool = False,
     result: FringeResult | None = None,
 ) -> FringeResult:
     """Measure the fringes of one calibrated 2-D image.
@@ -216,6 +217,10 @@ def analyze_image(
     max_envelope_terms : int, optional
         Largest number of envelope functions tried (default: as many as keep the spline
         knots 2.5 periods apart).
+    fast : bool
+        With ``orientation_deg`` and ``period_px`` given: one projection along the given
+        normal and a linearised least-squares fit (phase, visibility and a period
+        correction; the orientation is taken as given). For long stacks of one setup.
     result : FringeResult, optional
         Result to fill in (carrying file, frame and calibration provenance).
 
@@ -276,13 +281,24 @@ def analyze_image(
                         "no fringe pattern")
     res.provenance.append(("region", {"width": w, "height": h, "usable_pixels": n_valid}))
 
-    # 1. First estimate from the spectrum.
-    try:
-        peak = spectral_peak(img, bad if bad.any() else None)
-    except ValueError as exc:
-        return res.fail(f"no fringe pattern found: {exc}")
-    res.set("spectral_snr", peak.snr)
-    if orientation_deg is None or period_px is None:
+    # 1. First estimate from the spectrum (skipped when the geometry is given).
+    fixed = orientation_deg is not None and period_px is not None
+    if fixed and fast:
+        return _analyze_fast(img, bad, variance, fold_angle_deg(orientation_deg),
+                             float(period_px), min_snr, res)
+    if fixed:
+        from fringe.orient import SpectralPeak
+
+        t_fix = fold_angle_deg(orientation_deg)
+        peak = SpectralPeak(f_x=0.0, f_row=0.0, period_px=float(period_px),
+                            orientation_deg=t_fix, snr=float("nan"))
+    else:
+        try:
+            peak = spectral_peak(img, bad if bad.any() else None)
+        except ValueError as exc:
+            return res.fail(f"no fringe pattern found: {exc}")
+        res.set("spectral_snr", peak.snr)
+    if not fixed:
         if not peak.snr >= min_snr:
             return res.fail(
                 f"no fringe pattern found: strongest spatial frequency has SNR "
@@ -468,8 +484,11 @@ def analyze_image(
     if extent_u / period < 3:
         res.warn(f"only {extent_u / period:.1f} fringes in the region (fewer than 3): period "
                  "and visibility are unreliable")
-    if peak.snr < 2 * min_snr:
+    if not fixed and peak.snr < 2 * min_snr:
         res.warn(f"weak fringe signal (spectral SNR {peak.snr:.1f})")
+    if fixed and v_raw_err > 0 and v_raw / v_raw_err < min_snr:
+        return res.fail(f"no fringe signal at the given period and orientation: the "
+                        f"modulation is {v_raw / v_raw_err:.1f} sigma, below {min_snr:g}")
     if v_raw_err > 0.2 * max(abs(v_raw), 1e-12) or phi_err > 0.5:
         res.warn("low SNR: the visibility or phase uncertainty is large")
     if fit.cov_scale > 2.0:
@@ -497,6 +516,98 @@ def analyze_image(
             f"±{lmap['orientation_spread_deg']:.1f} deg and period by "
             f"±{100 * lmap['period_spread']:.0f} % across the region; values are averages"
         )
+    return res
+
+
+def _analyze_fast(img, bad, variance, t, period, min_snr, res) -> FringeResult:
+    """Linearised fit along a known normal.
+
+    Notes
+    -----
+    Step 1 solves S(u) + c(u) cos psi + s(u) sin psi (psi = 2 pi u / P, Legendre series
+    of three terms) for a first phase phi0 at the centre. Step 2 works in the rotated
+    frame psi' = psi + phi0: S(u) + A(u) cos psi' + q0 sin psi' + q1 u sin psi', linear
+    in all coefficients, where -q0/A(0) is the phase correction and -q1/A(0) the
+    frequency correction (first-order Taylor expansion of cos(psi' + d phi + d omega u)).
+    The pixel noise comes from the weighted residuals; the uncertainties from the
+    coefficient covariance by first-order propagation.
+    """
+    from numpy.polynomial import legendre as leg
+
+    prof = project(img, bad if bad.any() else None, orientation_deg=t,
+                   bin_width=period / 16.0, n_strips=1, variance=variance)
+    omega = 2 * np.pi / period
+    lo, hi = prof.u_range
+    mid, half = 0.5 * (lo + hi), max(0.5 * (hi - lo), 1e-9)
+    k = 3 if (hi - lo) / period >= 6 else 1
+    basis = leg.legvander((prof.u - mid) / half, k - 1)
+    b0 = leg.legvander(np.array([-mid / half]), k - 1)[0]
+    g = np.exp(-0.5 * omega**2 * prof.u_var)
+    wts = (1.0 / np.sqrt(np.maximum(prof.var_mean, 1e-300)) if prof.var_mean is not None
+           else np.sqrt(prof.count))
+    psi = omega * prof.u
+    d1 = np.hstack([basis, basis * (g * np.cos(psi))[:, None],
+                    basis * (g * np.sin(psi))[:, None]])
+    c1 = np.linalg.lstsq(d1 * wts[:, None], prof.mean * wts, rcond=None)[0]
+    phi0 = float(np.arctan2(-(b0 @ c1[2 * k:]), b0 @ c1[k:2 * k]))
+    psi2 = psi + phi0
+    cp, sp = g * np.cos(psi2), g * np.sin(psi2)
+    design = np.hstack([basis, basis * cp[:, None], sp[:, None], (prof.u * sp)[:, None]])
+    dw = design * wts[:, None]
+    coef = np.linalg.lstsq(dw, prof.mean * wts, rcond=None)[0]
+    r = (prof.mean - design @ coef) * wts
+    dof = max(r.size - coef.size, 1)
+    scale = float(r @ r) / dof if prof.var_mean is None else max(1.0, float(r @ r) / dof)
+    try:
+        cov = np.linalg.inv(dw.T @ dw) * scale
+    except np.linalg.LinAlgError:
+        return res.fail("fit along the given geometry failed (singular design)")
+    eligible = prof.count >= 0.5 * prof.count.max()
+    grid = basis[eligible]
+
+    def derived(cf):
+        a0 = b0 @ cf[k:2 * k]
+        dphi = -cf[2 * k] / a0
+        domega = -cf[2 * k + 1] / a0
+        amp = grid @ cf[k:2 * k]
+        j = int(np.argmax(amp))
+        level = grid[j] @ cf[:k]
+        return phi0 + dphi, 2 * np.pi / (omega + domega), amp[j] / level, level, amp[j]
+
+    phi, per, v_raw, level, amp = derived(coef)
+    if level <= 0 or amp <= 0:
+        return res.fail("no fringe signal at the given period and orientation")
+    jac = np.zeros((3, coef.size))
+    for i in range(coef.size):
+        hstep = 1e-6 * max(abs(coef[i]), np.sqrt(max(cov[i, i], 1e-300)), 1e-12)
+        up, dn = coef.copy(), coef.copy()
+        up[i] += hstep
+        dn[i] -= hstep
+        a1, a2 = derived(up), derived(dn)
+        jac[:, i] = [(a1[0] - a2[0]) / (2 * hstep), (a1[1] - a2[1]) / (2 * hstep),
+                     (a1[2] - a2[2]) / (2 * hstep)]
+    errs = np.sqrt(np.maximum(np.diag(jac @ cov @ jac.T), 0.0))
+    if errs[2] > 0 and v_raw / errs[2] < min_snr:
+        return res.fail(f"no fringe signal at the given period and orientation: the "
+                        f"modulation is {v_raw / errs[2]:.1f} sigma, below {min_snr:g}")
+    tr = np.deg2rad(t)
+    mtf = float(np.sinc(np.cos(tr) / per) * np.sinc(np.sin(tr) / per))
+    sigma_pix = (float(np.sqrt(scale)) if prof.var_mean is None
+                 else float(np.sqrt(np.median(variance[~bad]))))
+    res.set("orientation_deg", t, 0.0)
+    res.set("period_px", float(per), float(errs[1]))
+    res.set("phase_rad", wrap_phase(float(phi)), float(errs[0]))
+    res.set("visibility", float(v_raw) / mtf, float(errs[2]) / mtf)
+    res.set("visibility_raw", float(v_raw), float(errs[2]))
+    res.set("snr", float(amp) / sigma_pix if sigma_pix > 0 else float("inf"))
+    res.set("mean_level", float(level))
+    res.set("amplitude", float(amp))
+    res.set("pixel_mtf", mtf)
+    res.set("fringes_in_region", float((hi - lo) / per))
+    res.provenance.append(("fit", {"model": "linearised along a fixed normal",
+                                   "orientation_deg": t, "period_px": period}))
+    res.warn("fixed geometry: the orientation is taken as given (its uncertainty is not "
+             "included)")
     return res
 
 
@@ -562,7 +673,7 @@ def _calibration(dark: Any, flat: Any, options: dict):
     return cal
 
 
-_ANALYZE_OPTS = ("min_snr", "orientation_deg", "period_px", "max_envelope_terms")
+_ANALYZE_OPTS = ("min_snr", "orientation_deg", "period_px", "max_envelope_terms", "fast")
 
 
 def _measure_frame(frame, cal, roi, options, infer_fn=None) -> FringeResult:

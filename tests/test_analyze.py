@@ -258,3 +258,26 @@ def test_phase_convention_at_centre(angle, phase):
     r = fringe.measure(img)
     assert abs(_phase_diff(r.phase_rad, phase)) < 5e-3
     assert abs(r.orientation_deg - angle) < 0.02
+
+
+def test_fast_fixed_geometry_mode():
+    # The linearised fit along a given normal agrees with the full fit within its
+    # uncertainty and its uncertainties are honest (|error| <= 2 sigma in most trials).
+    rng = np.random.default_rng(21)
+    clean = render_fringes((160, 160), period_px=12.0, orientation_deg=25.0, phase_rad=0.9,
+                           visibility=0.7, mean=500.0)
+    errs, sig = [], []
+    for _ in range(40):
+        img = clean + rng.normal(0, 25.0, clean.shape)
+        r = analyze_image(img, orientation_deg=25.0, period_px=12.01, fast=True)
+        assert r.ok, r.error
+        errs.append([_phase_diff(r.phase_rad, 0.9), r.period_px - 12.0, r.visibility - 0.7])
+        sig.append([r.phase_rad_err, r.period_px_err, r.visibility_err])
+    errs, sig = np.abs(np.array(errs)), np.array(sig)
+    cover = (errs <= 2 * sig).mean(axis=0)
+    assert np.all(cover >= 0.85), cover
+    full = analyze_image(img)
+    assert full.phase_rad_err == pytest.approx(sig[-1][0], rel=0.3)
+    none = analyze_image(rng.normal(100, 5, (96, 96)), orientation_deg=25.0, period_px=12.0,
+                         fast=True)
+    assert none.status == "error" and "no fringe signal" in none.error
