@@ -22,7 +22,7 @@ from fringe.fit import (
     fit_sinc2_envelope,
 )
 from fringe.orient import block_mean, local_fringe_map, spectral_peak
-from fringe.profile import Profile, pixel_coordinates, project
+from fringe.profile import Profile, project
 from fringe.result import FringeResult
 
 __all__ = ["measure", "measure_frames", "analyze_image", "NoiseModel", "DEFAULT_MIN_SNR"]
@@ -66,8 +66,11 @@ def _noise_from_residuals(
     step = max(1, int(np.ceil(h * w / max_pixels)))
     rows = np.arange(0, h, step)
     sub = image[rows].astype(np.float64, copy=False)
-    u, v = pixel_coordinates((h, w), prof.orientation_deg, prof.centre)
-    u, v = u[rows], v[rows]
+    nx, nr = np.cos(np.deg2rad(prof.orientation_deg)), -np.sin(np.deg2rad(prof.orientation_deg))
+    x = np.arange(w, dtype=np.float64) - prof.centre[0]
+    r = rows.astype(np.float64) - prof.centre[1]
+    u = nx * x[None, :] + nr * r[:, None]
+    v = -nr * x[None, :] + nx * r[:, None]
     strip = prof.strip_of(v)
     model = fit.model(u.ravel(), v.ravel(), strip.ravel()).reshape(sub.shape)
     resid = sub - model

@@ -198,24 +198,40 @@ def project(
         u, v, vals = u[keep], v[keep], img[keep]
         var = variance[keep] if variance is not None else None
     else:
-        u, v, vals = u.ravel(), v.ravel(), img.ravel()
+        vals = img.ravel()
         var = variance.ravel() if variance is not None else None
-    umin, umax = float(u.min()), float(u.max())
-    vmin, vmax = float(v.min()), float(v.max())
+    if u.size == h * w and row_step == 1:
+        # Nothing masked: the extremes sit at the corners of the region.
+        umin, umax = float(min(u[0, 0], u[0, -1], u[-1, 0], u[-1, -1])), float(
+            max(u[0, 0], u[0, -1], u[-1, 0], u[-1, -1]))
+        vmin, vmax = float(min(v[0, 0], v[0, -1], v[-1, 0], v[-1, -1])), float(
+            max(v[0, 0], v[0, -1], v[-1, 0], v[-1, -1]))
+        u, v = u.ravel(), v.ravel()
+    else:
+        u, v = u.ravel(), v.ravel()
+        umin, umax = float(u.min()), float(u.max())
+        vmin, vmax = float(v.min()), float(v.max())
     nb = int(np.floor((umax - umin) / bin_width)) + 1
-    kb = np.minimum(((u - umin) / bin_width).astype(np.int64), nb - 1)
+    tmp = u - umin
+    tmp *= 1.0 / bin_width
+    index = tmp.astype(np.intp)
+    np.minimum(index, nb - 1, out=index)
     n_strips = max(1, int(n_strips))
     if n_strips > 1:
         span = max(vmax - vmin, 1e-9)
-        ks = np.minimum(((v - vmin) / span * n_strips).astype(np.int64), n_strips - 1)
-        index = ks * nb + kb
-    else:
-        index = kb
+        np.subtract(v, vmin, out=tmp)
+        tmp *= n_strips / span
+        ks = tmp.astype(np.intp)
+        np.minimum(ks, n_strips - 1, out=ks)
+        ks *= nb
+        index += ks
+        del ks
+    del tmp
     size = nb * n_strips
     cnt = np.bincount(index, minlength=size).astype(np.float64)
     s_i = np.bincount(index, weights=vals.astype(np.float64, copy=False), minlength=size)
     s_u = np.bincount(index, weights=u, minlength=size)
-    s_uu = np.bincount(index, weights=u * u, minlength=size)
+    s_uu = np.bincount(index, weights=np.square(u), minlength=size)
     s_v = np.bincount(index, weights=v, minlength=size)
     s_var = np.bincount(index, weights=var, minlength=size) if var is not None else None
     ok = cnt > 0
