@@ -431,9 +431,14 @@ def analyze_image(
     s_pk, a_pk, v_raw_err, u_star, s_curve, a_curve = _pooled_envelope(
         fit, prof_v, _bin_sigma(prof_v, noise))
     if bright.size < prof2.n_strips:
+        n_used = prof2.n_strips if prof_v is prof1 else n_fine
+        v_lo, v_hi = prof2.v_range
+        step_v = (v_hi - v_lo) / max(n_used, 1)
         res.provenance.append(("envelope_along_fringes",
                                {"strips_used": [int(j) for j in bright],
-                                "strips": prof2.n_strips}))
+                                "strips": int(n_used),
+                                "v_band_px": [float(v_lo + step_v * bright.min()),
+                                              float(v_lo + step_v * (bright.max() + 1))]}))
     if s_pk <= 0:
         return res.fail(f"mean level at the fringe envelope peak is {s_pk:.3g}, not positive "
                         "(is the dark frame right?)")
@@ -473,8 +478,10 @@ def analyze_image(
             res.provenance.append(("envelope", {"model": "sinc2", "chi2_red":
                                                 env.chi2 / max(env.dof, 1)}))
     nx1, nr1 = np.cos(np.deg2rad(t1)), -np.sin(np.deg2rad(t1))
-    res.set("envelope_centre_x_px", prof2.centre[0] + u_env * nx1)
-    res.set("envelope_centre_y_px", prof2.centre[1] + u_env * nr1)
+    # along the fringes: the middle of the band the visibility was taken in
+    v_env = float(np.average(prof_v.v, weights=prof_v.count)) if prof_v is not prof1 else 0.0
+    res.set("envelope_centre_x_px", prof2.centre[0] + u_env * nx1 - v_env * nr1)
+    res.set("envelope_centre_y_px", prof2.centre[1] + u_env * nr1 + v_env * nx1)
     res.set("phase_at_envelope_rad", wrap_phase(flip * (fit.omega * u_env + fit.phi)))
     res.context.update({"fit": fit, "profile": prof2, "pooled": prof1, "noise": noise,
                         "u_envelope": u_env, "orientation_fit_deg": t1,

@@ -116,6 +116,10 @@ def build_parser() -> argparse.ArgumentParser:
     m.add_argument("--min-snr", type=float, default=None,
                    help="spectral SNR below which no fringe pattern is reported (default 5)")
     m.add_argument("-o", "--output", metavar="FILE", help="write the records to FILE")
+    m.add_argument("--plot", metavar="DIR",
+                   help="write PNG figures (frame, profile and fit, spectrum) to DIR")
+    m.add_argument("--report", metavar="FILE.html",
+                   help="write a self-contained HTML report of the run")
     _add_input(m)
     _add_calibration(m)
     _add_geometry(m)
@@ -145,6 +149,9 @@ def build_parser() -> argparse.ArgumentParser:
         sp.add_argument("--channel", choices=["auto", "luma", "red", "green", "blue"],
                         default="luma")
 
+    from fringe import photons
+
+    photons.add_parser(sub)
     dm = sub.add_parser("demo", help="run the whole job on the bundled sample images",
                         epilog=SAFETY)
     dm.add_argument("--samples", metavar="DIR", help="sample-images folder (default: bundled)")
@@ -211,6 +218,7 @@ def _cmd_measure(args: argparse.Namespace, out, err) -> int:
         target = fh
     failed = False
     results = []
+    keep_all = bool(args.plot or args.report)
     csvw = report.CsvStream(target) if args.format == "csv" else None
     try:
         for path in args.images:
@@ -224,7 +232,7 @@ def _cmd_measure(args: argparse.Namespace, out, err) -> int:
                         target.flush()
                     elif csvw is not None:
                         csvw.write(res)
-                    else:
+                    if args.format == "text" or keep_all:
                         results.append(res)
             except FringeError as exc:
                 failed = True
@@ -236,7 +244,7 @@ def _cmd_measure(args: argparse.Namespace, out, err) -> int:
                     target.write(report.json_line(bad) + "\n")
                 elif csvw is not None:
                     csvw.write(bad)
-                else:
+                if args.format == "text" or keep_all:
                     results.append(bad)
         if args.format == "text":
             extra = _inferred_columns(results)
@@ -244,7 +252,26 @@ def _cmd_measure(args: argparse.Namespace, out, err) -> int:
     finally:
         if fh is not None:
             fh.close()
+    if keep_all:
+        from fringe.htmlreport import measure_outputs
+
+        try:
+            made = measure_outputs(results, images=args.images, plot_dir=args.plot,
+                                   report=args.report, settings=_printable(opts),
+                                   command=["fringe", *getattr(args, "argv", [])],
+                                   calibration=cal)
+        except FringeError as exc:
+            err.write(f"fringe: {exc}\n")
+            return 1
+        for note in made.get("notes", []):
+            err.write(f"fringe: note: {note}\n")
+        if made.get("report"):
+            err.write(f"fringe: report written to {made['report']}\n")
     return 1 if failed else 0
+
+
+def _printable(opts: dict) -> dict:
+    return {k: (list(v) if isinstance(v, tuple) else v) for k, v in opts.items()}
 
 
 def _inferred_columns(results) -> list[tuple[str, str, str]]:
@@ -346,6 +373,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         args = parser.parse_args(argv)
     except SystemExit as exc:  # usage errors (2) and --help/--version (0)
         return int(exc.code) if isinstance(exc.code, int) else (0 if exc.code is None else 2)
+    args.argv = argv
     out, err = sys.stdout, sys.stderr
     if args.command is None:
         parser.print_help(out)
@@ -355,6 +383,10 @@ def main(argv: Sequence[str] | None = None) -> int:
             return _cmd_measure(args, out, err)
         if args.command == "calib":
             return _cmd_calib(args, out, err)
+        if args.command == "photons":
+            from fringe import photons
+
+            return photons.run(args, out, err)
         if args.command == "demo":
             from fringe.demo import run_demo
 

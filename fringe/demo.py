@@ -95,6 +95,8 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
     out_path = Path(out_dir) if out_dir else Path.cwd() / "fringe-demo-output"
     out_path.mkdir(parents=True, exist_ok=True)
     records: list[dict] = []
+    objects: list = []  # results with their in-memory context, for the figures
+    drift_series: list = []
     failed = False
     for line in SAFETY_LINES:
         out.write(line + "\n")
@@ -126,6 +128,7 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
                     distance_mm=(o["distance_mm"], 0.5),
                     slit_separation_um=(o["slit_separation_um"], 5.0))
         records.append(r.to_dict())
+        objects.append(r)
         if not r.ok:
             failed = True
             out.write(f"    error: {r.error}\n")
@@ -158,6 +161,7 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
                     distance_mm=(o["distance_mm"], 10.0),
                     slit_separation_um=(o["slit_separation_um"], 2.0))
         records.append(r.to_dict())
+        objects.append(r)
         if not r.ok:
             failed = True
             out.write(f"    error: {r.error}\n")
@@ -182,6 +186,7 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
                     slit_separation_um=(o["slit_separation_um"], 2.0),
                     source_distance_mm=(src["distance_mm"], 1.0), source_shape=src["shape"])
         records.append(r.to_dict())
+        objects.append(r)
         if not r.ok:
             failed = True
             out.write(f"    error: {r.error}\n")
@@ -210,6 +215,8 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
         phases, errs = [], []
         for r in measure_frames(root / f["science"]):
             records.append(r.to_dict())
+            if r.frame == 0:
+                objects.append(r)
             if not r.ok:
                 failed = True
                 out.write(f"    frame {r.frame}: {r.error}\n")
@@ -226,6 +233,7 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
         scale = max(1.0, float(np.sum((resid * w) ** 2)) / max(ph.size - 2, 1))
         rate_err = float(np.sqrt(cov[0, 0] * scale))
         dt = s.get("frame_interval_s")
+        drift_series[:] = [k, ph, np.array(errs), dt]
         out.write(f"    {f['science']}: {ph.size} frames measured one at a time\n")
         table.add("drift", float(coef[0]), rate_err, "rad/frame", t["drift_rad_per_frame"])
         if dt:
@@ -235,10 +243,70 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
                   t["jitter_rad"])
         table.add("peak-to-peak phase", float(np.ptp(ph)) / (2 * np.pi), None, "waves")
 
+    # Bench 5: photon counting.
+    def photon_run() -> None:
+        nonlocal failed
+        from fringe.io import iter_frames
+        from fringe.photons import analyze_photons
+
+        s = scen["photons"]
+        f, t = s["files"], s["truth"]
+        stack = (fr.data for fr in iter_frames(root / f["science"]))
+        dark = np.stack([fr.data for fr in iter_frames(root / f["dark"])])
+        r = analyze_photons(stack, dark=dark, file=f["science"])
+        records.append(r.to_dict())
+        if not r.ok:
+            failed = True
+            out.write(f"    error: {r.error}\n")
+            return
+        out.write(f"    {f['science']}: {r.get('photons'):.0f} photon events; dark stack "
+                  f"{f['dark']} for the background\n")
+        table.add("period", r.period_px, r.period_px_err, "px", t["period_px"])
+        table.add("orientation", r.orientation_deg, r.orientation_deg_err, "deg",
+                  t["orientation_deg"])
+        table.add("visibility", r.visibility, r.visibility_err, "",
+                  t.get("visibility_expected_background_removed", t["visibility"]),
+                  rel_floor=0.03)
+        table.add("significance", r.get("significance"), None, "sigma")
+        if r.get("photons_needed") is not None:
+            table.add("photons for 1 % on V", r.get("photons_needed"), None, "")
+        build = r.get("build_up") or []
+        if build:
+            out.write("    build-up (photons: visibility):" + "".join(
+                f"  {b.get('photons', 0):.0f}: {b.get('visibility', float('nan')):.3f}"
+                for b in build[:: max(1, len(build) // 5)]) + "\n")
+        _warnings(out, r)
+
     bench("Bench 1 - 532 nm laser, double slit, 12-bit mono sensor", green)
     bench("Bench 2 - 650 nm diode laser on a wall, phone JPEG with a ruler", phone)
     bench("Bench 3 - filtered mercury lamp behind a slit source (partial coherence)", lamp)
     bench("Bench 4 - HeNe interferometer stack with thermal drift", drift)
+    bench("Bench 5 - two-beam fringes, a few photons per frame", photon_run)
+
+    # Figures and the HTML report (when matplotlib is installed).
+    try:
+        from fringe import figures
+        from fringe.htmlreport import measure_outputs
+
+        made = measure_outputs(objects, images=[o.file for o in objects],
+                               plot_dir=out_path / "figures", report=None,
+                               settings={"samples": str(root)}, command=["fringe", "demo"])
+        extra = []
+        if drift_series:
+            k, ph, errs_, dt = drift_series
+            extra.append(("Bench 4: phase drift", figures.plot_drift(
+                k, ph, out_path / "figures" / "hene633-drift.png", phase_err=errs_,
+                frame_interval_s=dt)))
+        from fringe.htmlreport import report_for_results
+
+        report_for_results(out_path / "report.html", objects,
+                           images=[o.file for o in objects],
+                           figures=[*made.get("figures", []), *extra],
+                           settings={"samples": str(root)}, command=["fringe", "demo"],
+                           title="fringe demo: the Lantern Street Optics Lab samples")
+        out.write(f"\nFigures: {out_path / 'figures'}\nReport:  {out_path / 'report.html'}\n")
+    except FringeError as exc:
+        out.write(f"\nFigures and report skipped: {exc}\n")
 
     results = out_path / "demo-results.jsonl"
     tmp = results.with_suffix(".jsonl.part")
