@@ -149,8 +149,9 @@ def build_parser() -> argparse.ArgumentParser:
         sp.add_argument("--channel", choices=["auto", "luma", "red", "green", "blue"],
                         default="luma")
 
-    from fringe import photons
+    from fringe import batch, photons
 
+    batch.add_parser(sub)
     photons.add_parser(sub)
     dm = sub.add_parser("demo", help="run the whole job on the bundled sample images",
                         epilog=SAFETY)
@@ -383,6 +384,10 @@ def main(argv: Sequence[str] | None = None) -> int:
             return _cmd_measure(args, out, err)
         if args.command == "calib":
             return _cmd_calib(args, out, err)
+        if args.command == "batch":
+            from fringe import batch
+
+            return batch.run(args, out, err)
         if args.command == "photons":
             from fringe import photons
 
