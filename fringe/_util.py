@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["FringeError", "as_float", "wrap_phase", "fold_angle_deg"]
+__all__ = ["FringeError", "as_float", "wrap_phase", "fold_angle_deg", "LazyModule"]
 
 
 class FringeError(ValueError):
@@ -36,3 +36,25 @@ def fold_angle_deg(t: float) -> float:
     """Fold an angle in degrees into [0, 180)."""
     f = float(t) % 180.0
     return 0.0 if f >= 180.0 else f
+
+
+class LazyModule:
+    """A module imported on first attribute access (keeps command start-up fast).
+
+    Examples
+    --------
+    >>> special = LazyModule("scipy.special")
+    >>> float(special.j1(0.0))
+    0.0
+    """
+
+    def __init__(self, name: str):
+        self._name = name
+        self._module = None
+
+    def __getattr__(self, attr: str):
+        if self._module is None:
+            import importlib
+
+            self._module = importlib.import_module(self._name)
+        return getattr(self._module, attr)

@@ -149,10 +149,11 @@ def build_parser() -> argparse.ArgumentParser:
         sp.add_argument("--channel", choices=["auto", "luma", "red", "green", "blue"],
                         default="luma")
 
-    from fringe import batch, photons
+    from fringe import batch, photons, wavefront
 
     batch.add_parser(sub)
     photons.add_parser(sub)
+    wavefront.add_parser(sub)
     dm = sub.add_parser("demo", help="run the whole job on the bundled sample images",
                         epilog=SAFETY)
     dm.add_argument("--samples", metavar="DIR", help="sample-images folder (default: bundled)")
@@ -388,6 +389,10 @@ def main(argv: Sequence[str] | None = None) -> int:
             from fringe import batch
 
             return batch.run(args, out, err)
+        if args.command == "wavefront":
+            from fringe import wavefront
+
+            return wavefront.run(args, out, err)
         if args.command == "photons":
             from fringe import photons
 

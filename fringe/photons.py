@@ -36,12 +36,16 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy import ndimage, optimize, stats
 
-from fringe._util import FringeError, fold_angle_deg, wrap_phase
+from fringe._util import FringeError, LazyModule, fold_angle_deg, wrap_phase
 from fringe.orient import spectral_peak
 from fringe.profile import project
 from fringe.result import FringeResult
+
+# scipy is imported on first use, so that `fringe --help` and batch start quickly
+ndimage = LazyModule("scipy.ndimage")
+optimize = LazyModule("scipy.optimize")
+stats = LazyModule("scipy.stats")
 
 __all__ = [
     "PARAMETERS",
