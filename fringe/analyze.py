@@ -373,11 +373,20 @@ def analyze_image(
         if variance is None:
             # The noise again from the better model's residuals, then the final fit with
             # weights from the model level (data-derived weights would bias the level).
+            noise_prev = noise
             noise = _noise_from_residuals(img, bad, fit, prof2)
-            level = fit.model(prof2.u, prof2.v, prof2.strip, prof2.u_var)
-            sig2 = np.sqrt(noise.variance(level) / prof2.count)
-            fit = fit_profile(prof2, omega0=fit.omega, n_basis=n_basis, sigma=sig2,
-                              kappa0=fit.kappa)
+            if noise.beta == 0.0 and noise_prev.beta == 0.0:
+                # Equal weights both times: the same solution, only the scale differs.
+                ratio = noise_prev.alpha / noise.alpha
+                fit.chi2 *= ratio
+                fit.cov = fit.cov / fit.cov_scale
+                fit.cov_scale = max(1.0, fit.chi2 / max(fit.dof, 1))
+                fit.cov = fit.cov / ratio * fit.cov_scale
+            else:
+                level = fit.model(prof2.u, prof2.v, prof2.strip, prof2.u_var)
+                sig2 = np.sqrt(noise.variance(level) / prof2.count)
+                fit = fit_profile(prof2, omega0=fit.omega, n_basis=n_basis, sigma=sig2,
+                                  kappa0=fit.kappa)
     except (np.linalg.LinAlgError, ValueError) as exc:
         return res.fail(f"fringe fit failed: {exc}")
 

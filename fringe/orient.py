@@ -106,7 +106,7 @@ def spectral_peak(
     Notes
     -----
     The image, mean removed, is multiplied by a separable Hann window and transformed
-    with a real FFT (zero-padded twofold for images up to 512 x 512 pixels). The peak is
+    with a real FFT (zero-padded twofold for images up to 256 x 256 pixels). The peak is
     refined to sub-bin precision by a parabola through the logarithm of the power in
     each axis, which is exact for a Gaussian-shaped main lobe and a close approximation
     for the Hann lobe.
@@ -198,7 +198,7 @@ def _spectral_peak_core(image, mask, min_period, max_period) -> SpectralPeak:
     wy = np.hanning(h + 2)[1:-1]
     wx = np.hanning(w + 2)[1:-1]
     windowed = img * wy[:, None] * wx[None, :]
-    pad = 2 if h * w <= 262_144 else 1
+    pad = 2 if h * w <= 65_536 else 1
     ny, nx = sfft.next_fast_len(pad * h), sfft.next_fast_len(pad * w, real=True)
     dtype = np.float32 if h * w > 4_000_000 else np.float64
     spec = sfft.rfft2(windowed.astype(dtype, copy=False), s=(ny, nx), workers=-1)
