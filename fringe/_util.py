@@ -2,9 +2,14 @@
 
 from __future__ import annotations
 
+import contextlib
+import os
+from collections.abc import Iterator
+
 import numpy as np
 
-__all__ = ["FringeError", "as_float", "wrap_phase", "fold_angle_deg", "LazyModule"]
+__all__ = ["FringeError", "as_float", "wrap_phase", "fold_angle_deg", "LazyModule",
+           "atomic_output"]
 
 
 class FringeError(ValueError):
@@ -58,3 +63,30 @@ class LazyModule:
 
             self._module = importlib.import_module(self._name)
         return getattr(self._module, attr)
+
+
+@contextlib.contextmanager
+def atomic_output(path: str | os.PathLike, what: str = "output") -> Iterator[str]:
+    """Write a file atomically: yield ``path + ".part"``, rename it into place on success.
+
+    A crash or an error leaves either the previous file or none, never half a file. An
+    ``OSError`` becomes a one-line `FringeError` naming the file.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> d = tempfile.mkdtemp()
+    >>> with atomic_output(d + "/a.txt") as tmp:
+    ...     _ = pathlib.Path(tmp).write_text("done")
+    >>> pathlib.Path(d + "/a.txt").read_text()
+    'done'
+    """
+    out = os.fspath(path)
+    tmp = out + ".part"
+    try:
+        yield tmp
+        os.replace(tmp, out)
+    except OSError as exc:
+        with contextlib.suppress(OSError):
+            os.remove(tmp)
+        raise FringeError(f"{out}: cannot write {what} ({exc.strerror or exc})") from None

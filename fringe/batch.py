@@ -40,7 +40,7 @@ from typing import Any, TextIO
 
 import numpy as np
 
-from fringe._util import FringeError
+from fringe._util import FringeError, atomic_output
 from fringe.result import MEASURED_KEYS
 
 __all__ = [
@@ -1665,10 +1665,8 @@ def _jsonable(obj: Any) -> Any:
 
 
 def _write_atomic(path: str, text: str) -> None:
-    tmp = path + ".part"
-    with open(tmp, "w", encoding="utf-8") as fh:
+    with atomic_output(path, "the summary") as tmp, open(tmp, "w", encoding="utf-8") as fh:
         fh.write(text)
-    os.replace(tmp, path)
 
 
 def _list_frames(frames: Sequence[int], limit: int = 20) -> str:

@@ -13,7 +13,7 @@ import sys
 from collections.abc import Sequence
 
 from fringe import __version__
-from fringe._util import FringeError
+from fringe._util import FringeError, atomic_output
 
 __all__ = ["main", "build_parser"]
 
@@ -295,10 +295,9 @@ def _write_master(path: str, data, description: dict) -> None:
     import numpy as np
     import tifffile
 
-    tmp = path + ".part"
-    tifffile.imwrite(tmp, np.asarray(data, dtype=np.float32),
-                     description=json.dumps(description), metadata=None)
-    os.replace(tmp, path)
+    with atomic_output(path, "the master frame") as tmp:
+        tifffile.imwrite(tmp, np.asarray(data, dtype=np.float32),
+                         description=json.dumps(description), metadata=None)
 
 
 def _cmd_calib(args: argparse.Namespace, out, err) -> int:

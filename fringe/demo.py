@@ -16,7 +16,7 @@ from typing import Any, TextIO
 
 import numpy as np
 
-from fringe._util import FringeError
+from fringe._util import FringeError, atomic_output
 from fringe.report import format_value
 
 __all__ = ["run_demo", "find_samples", "SAFETY_LINES"]
@@ -336,11 +336,10 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
         out.write(f"\nFigures and report skipped: {exc}\n")
 
     results = out_path / "demo-results.jsonl"
-    tmp = results.with_suffix(".jsonl.part")
-    with open(tmp, "w", encoding="utf-8") as fh:
+    with atomic_output(results, "the demo records") as tmp, open(tmp, "w",
+                                                                 encoding="utf-8") as fh:
         for rec in records:
             fh.write(json.dumps(rec, default=str) + "\n")
-    os.replace(tmp, results)
     out.write(f"\nEvery record (JSON Lines) is in {results}\n")
     out.write(f"Outputs folder: {out_path}\n")
     return 1 if failed else 0

@@ -26,7 +26,7 @@ from typing import Any
 
 import numpy as np
 
-from fringe._util import FringeError
+from fringe._util import FringeError, atomic_output
 
 __all__ = [
     "PALETTE",
@@ -124,16 +124,8 @@ def _save(fig: Any, path: str | os.PathLike) -> str:
     from fringe import __version__
 
     out = os.fspath(path)
-    tmp = out + ".part"
-    try:
+    with atomic_output(out, "figure") as tmp:
         fig.savefig(tmp, format="png", dpi=DPI, metadata={"Software": f"fringe {__version__}"})
-        os.replace(tmp, out)
-    except OSError as exc:
-        try:
-            os.remove(tmp)
-        except OSError:
-            pass
-        raise FringeError(f"{out}: cannot write figure ({exc.strerror or exc})") from None
     return out
 
 

@@ -25,7 +25,7 @@ from typing import Any
 
 import numpy as np
 
-from fringe._util import FringeError
+from fringe._util import FringeError, atomic_output
 
 __all__ = [
     "SAFETY_NOTES",
@@ -569,17 +569,9 @@ def write_report(
     parts.append("</section></main></body></html>\n")
     text = "\n".join(parts)
 
-    tmp = out_path + ".part"
-    try:
-        with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(text)
-        os.replace(tmp, out_path)
-    except OSError as exc:
-        try:
-            os.remove(tmp)
-        except OSError:
-            pass
-        raise FringeError(f"{out_path}: cannot write report ({exc.strerror or exc})") from None
+    with atomic_output(out_path, "report") as tmp, open(tmp, "w", encoding="utf-8",
+                                                         newline="\n") as fh:
+        fh.write(text)
     return out_path
 
 

@@ -53,7 +53,7 @@ from typing import Any
 
 import numpy as np
 
-from fringe._util import FringeError, fold_angle_deg
+from fringe._util import FringeError, atomic_output, fold_angle_deg
 
 __all__ = [
     "MAX_ZERNIKE_TERMS",
@@ -2496,20 +2496,12 @@ def write_map(path: str | os.PathLike, array: np.ndarray, *,
     import tifffile
 
     name = os.fsdecode(path)
-    tmp = name + ".part"
     arr = np.asarray(array, dtype=np.float32)
     if arr.ndim != 2:
         raise FringeError(f"{name}: a map must be 2-D, got shape {arr.shape}")
     desc = json.dumps(_clean_tree(description or {}), allow_nan=False)
-    try:
+    with atomic_output(name, "the map") as tmp:
         tifffile.imwrite(tmp, arr, description=desc, metadata=None)
-        os.replace(tmp, name)
-    except OSError as exc:
-        try:
-            os.remove(tmp)
-        except OSError:
-            pass
-        raise FringeError(f"{name}: cannot write the map ({exc.strerror or exc})") from None
 
 
 def _clean_tree(obj: Any) -> Any:
