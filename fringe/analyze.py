@@ -650,7 +650,11 @@ def _check_roi(roi: Sequence[int] | None, shape: tuple[int, int], name: str) -> 
 
 
 def _calibration(dark: Any, flat: Any, options: dict):
-    """Build a CalibrationSet from paths, arrays or an existing set."""
+    """Build a CalibrationSet from paths, arrays (one frame or a stack) or an existing set.
+
+    Arrays are combined like files: a (N, H, W) stack, or a list of 2-D frames, is
+    median-combined; a flat is dark-subtracted and normalised to unit mean.
+    """
     from fringe import calibrate
 
     if isinstance(dark, calibrate.CalibrationSet):
@@ -658,37 +662,53 @@ def _calibration(dark: Any, flat: Any, options: dict):
     if dark is None and flat is None and options.get("gain_e_per_dn") is None:
         return None
 
-    def _files(obj):
+    def _split(obj):
+        """(file list, frame stack or None)."""
         if obj is None:
-            return []
+            return [], None
         if isinstance(obj, (str, bytes)) or hasattr(obj, "__fspath__"):
-            return [str(obj)]
+            return [str(obj)], None
         if isinstance(obj, np.ndarray):
-            return None
-        return [str(o) for o in obj]
+            arr = np.asarray(obj, dtype=np.float64)
+            return [], arr[None] if arr.ndim == 2 else arr
+        items = list(obj)
+        if items and all(isinstance(o, np.ndarray) for o in items):
+            return [], np.stack([np.asarray(o, dtype=np.float64) for o in items])
+        return [str(o) for o in items], None
 
-    dfiles, ffiles = _files(dark), _files(flat)
+    dfiles, darr = _split(dark)
+    ffiles, farr = _split(flat)
     io_opts = {k: options[k] for k in ("channel",) if k in options}
     cal = calibrate.build_calibration(
-        dfiles or (), ffiles or (),
+        dfiles, ffiles,
         gain_e_per_dn=options.get("gain_e_per_dn"),
         read_noise_dn=options.get("read_noise_dn"),
         **io_opts,
     )
-    if dfiles is None:
-        cal.dark = np.asarray(dark, dtype=np.float64)
+    if darr is not None:
+        if darr.ndim != 3:
+            raise FringeError(f"<dark array>: expected a 2-D frame or a stack of frames, got "
+                              f"shape {darr.shape}")
+        cal.dark, cal.dark_err = calibrate.master_dark(darr)
         cal.dark_files = ["<array>"]
-    if ffiles is None:
-        fl = np.asarray(flat, dtype=np.float64)
-        if cal.dark is not None and cal.dark.shape == fl.shape:
-            fl = fl - cal.dark
-        mean = float(np.mean(fl[np.isfinite(fl)]))
-        if mean <= 0:
-            raise FringeError("<flat array>: mean level is not positive")
-        fl = fl / mean
-        cal.flat_bad = ~np.isfinite(fl) | (fl < 0.05)
-        cal.flat = np.where(cal.flat_bad, 1.0, fl)
+        cal.n_dark_frames = int(darr.shape[0])
+    if farr is not None:
+        if farr.ndim != 3:
+            raise FringeError(f"<flat array>: expected a 2-D frame or a stack of frames, got "
+                              f"shape {farr.shape}")
+        if cal.dark is not None and cal.dark.shape != farr.shape[1:]:
+            raise FringeError(f"<flat array>: shape {farr.shape[1:]} does not match the dark "
+                              f"shape {cal.dark.shape}")
+        try:
+            cal.flat, cal.flat_err, cal.flat_bad = calibrate.master_flat(farr, dark=cal.dark)
+        except FringeError as exc:
+            raise FringeError(f"<flat array>: {exc}") from None
         cal.flat_files = ["<array>"]
+        cal.n_flat_frames = int(farr.shape[0])
+    if darr is not None or farr is not None:
+        cal.bad_pixels = calibrate.bad_pixel_map(dark=cal.dark, flat=cal.flat)
+        if cal.flat_bad is not None:
+            cal.bad_pixels |= cal.flat_bad
     return cal
 
 
