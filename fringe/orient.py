@@ -173,7 +173,9 @@ def _spectral_peak_large(image, mask, min_period, max_period) -> SpectralPeak:
     sub_mask = None if mask is None else mask[r0:r0 + crop, c0:c0 + crop]
     crop_max = min(sub.shape) / 3.0
     best = _spectral_peak_core(sub, sub_mask, min_period, min(max_period, crop_max))
-    if max_period > crop_max:
+    # The whole frame, block-averaged, only when the crop's answer is weak or near its
+    # longest period (a strong short-period pattern cannot hide a stronger long one).
+    if max_period > crop_max and (best.snr < 20.0 or best.period_px > 0.5 * crop_max):
         factor = int(np.ceil(max(full_h, full_w) / crop))
         prepared = _prepare(image, mask) if mask is not None and mask.any() else image
         binned = block_mean(prepared, factor)
