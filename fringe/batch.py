@@ -1888,6 +1888,13 @@ def run(args, out: TextIO, err: TextIO) -> int:
         except ImportError:
             err.write("fringe: --cluster needs Dask: install fringe[dask]\n")
             return 2
+    from fringe.cli import expand_paths
+
+    try:
+        args.dark, args.flat = expand_paths(args.dark), expand_paths(args.flat)
+    except FringeError as exc:
+        err.write(f"fringe: {exc}\n")
+        return 1
     opts = BatchOptions(
         fmt=args.format, resume=args.resume, overwrite=args.overwrite, workers=args.workers,
         chunk_size=args.chunk_size, fixed_geometry=args.fixed_geometry,

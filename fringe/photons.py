@@ -2318,6 +2318,9 @@ def run(args: Any, out: Any, err: Any) -> int:
     dark = None
     if args.dark:
         try:
+            from fringe.cli import expand_paths
+
+            args.dark = expand_paths(args.dark)
             stack = io.read_stack(args.dark, **opts)
             dark = dark_reference(stack, threshold=args.threshold, box=args.box,
                                   name=args.dark[0] if len(args.dark) == 1 else
