@@ -188,6 +188,19 @@ def project(
     h, w = img.shape
     if centre is None:
         centre = ((w - 1) / 2.0, (h - 1) / 2.0)
+    # The binning depends only on the pixel lattice: frames of a stack measured along one
+    # normal share it, so it is kept for the next call (small frames, nothing masked).
+    key = None
+    if (mask is None or not mask.any()) and variance is None and h * w <= 4_000_000:
+        key = (h, w, float(orientation_deg), float(bin_width), int(n_strips),
+               (float(centre[0]), float(centre[1])), int(row_step))
+        hit = _GEOMETRY.get(key)
+        if hit is not None:
+            index, size, geo = hit
+            vals = img[::row_step].ravel() if row_step > 1 else img.ravel()
+            s_i = np.bincount(index, weights=vals.astype(np.float64, copy=False),
+                              minlength=size)
+            return _profile_from(geo, s_i, None)
     u, v = pixel_coordinates((h, w), orientation_deg, centre)
     if row_step > 1:
         u, v, img = u[::row_step], v[::row_step], img[::row_step]
@@ -237,19 +250,30 @@ def project(
     ok = cnt > 0
     c = cnt[ok]
     mu = s_u[ok] / c
-    out_var = None if s_var is None else s_var[ok] / c**2
+    geo = {
+        "ok": ok, "u": mu, "v": s_v[ok] / c, "u_var": np.maximum(s_uu[ok] / c - mu**2, 0.0),
+        "strip": (np.nonzero(ok)[0] // nb).astype(np.int64), "count": c,
+        "u_range": (umin, umax), "v_range": (vmin, vmax), "n_strips": n_strips,
+        "bin_width": float(bin_width), "orientation_deg": float(orientation_deg),
+        "centre": (float(centre[0]), float(centre[1])),
+    }
+    if key is not None:
+        for arr in (index, *(x for x in geo.values() if isinstance(x, np.ndarray))):
+            arr.flags.writeable = False  # shared between calls: never changed in place
+        if len(_GEOMETRY) >= 4:
+            _GEOMETRY.pop(next(iter(_GEOMETRY)))
+        _GEOMETRY[key] = (index, size, geo)
+    return _profile_from(geo, s_i, None if s_var is None else s_var[geo["ok"]] / c**2)
+
+
+_GEOMETRY: dict = {}
+
+
+def _profile_from(geo: dict, s_i: np.ndarray, var_mean: np.ndarray | None) -> Profile:
+    c = geo["count"]
     return Profile(
-        u=mu,
-        v=s_v[ok] / c,
-        u_var=np.maximum(s_uu[ok] / c - mu**2, 0.0),
-        strip=(np.nonzero(ok)[0] // nb).astype(np.int64),
-        mean=s_i[ok] / c,
-        count=c,
-        var_mean=out_var,
-        u_range=(umin, umax),
-        v_range=(vmin, vmax),
-        n_strips=n_strips,
-        bin_width=float(bin_width),
-        orientation_deg=float(orientation_deg),
-        centre=(float(centre[0]), float(centre[1])),
+        u=geo["u"], v=geo["v"], u_var=geo["u_var"], strip=geo["strip"],
+        mean=s_i[geo["ok"]] / c, count=c, var_mean=var_mean, u_range=geo["u_range"],
+        v_range=geo["v_range"], n_strips=geo["n_strips"], bin_width=geo["bin_width"],
+        orientation_deg=geo["orientation_deg"], centre=geo["centre"],
     )
