@@ -748,6 +748,10 @@ def _measure_frame(frame, cal, roi, options, infer_fn=None) -> FringeResult:
             "srgb_decoded"):
         res.warn("no dark frame given: a camera offset or dark signal adds to the level and "
                  "lowers the visibility (give --dark)")
+    if frame.meta.get("format") == "jpeg" and res.ok and res.period_px < 16:
+        res.warn(f"JPEG compression (8 x 8 blocks) lowers the contrast of fine fringes: at "
+                 f"{res.period_px:.1f} px per fringe the visibility may read a few per cent "
+                 "low; prefer RAW or TIFF")
     if frame.meta.get("srgb_decoded"):
         res.warn("8-bit sRGB input decoded to linear light; phone processing (tone curves, "
                  "sharpening) can still bias the visibility")
