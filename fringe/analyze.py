@@ -341,7 +341,7 @@ def analyze_image(
 
     # 3. First fit, equal pixel weights, to refine the orientation and model the noise.
     omega0 = 2 * np.pi / p0
-    row_step = max(1, int(h * w // 2_000_000))
+    row_step = max(1, int(h * w // 500_000))  # the first pass only refines the angle
     prof = project(img, bad, orientation_deg=t0, bin_width=bin_width, n_strips=n_strips,
                    variance=variance, row_step=row_step)
     candidates = basis_candidates(prof.u_range, p0)
