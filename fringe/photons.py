@@ -283,10 +283,35 @@ def _empty_clusters() -> dict[str, np.ndarray]:
             "area": np.zeros(0, dtype=np.int64), "cluster_charge": np.zeros(0)}
 
 
+def _label8(mask: np.ndarray) -> tuple[np.ndarray, int]:
+    """8-connected components of a boolean frame (labels 1..n, 0 outside).
+
+    OpenCV's scan-based labelling is several times faster than scipy.ndimage.label on
+    sparse frames; scipy is the fallback. Only the partition into components matters
+    here, not the numbering.
+    """
+    try:
+        import cv2
+
+        n, labels = cv2.connectedComponents(np.ascontiguousarray(mask, dtype=np.uint8),
+                                            connectivity=8, ltype=cv2.CV_32S)
+        return labels, int(n) - 1
+    except (ImportError, AttributeError):  # pragma: no cover - OpenCV is a dependency
+        labels, n = ndimage.label(mask, structure=_EIGHT)
+        return labels, int(n)
+
+
 def _box_sum(d: np.ndarray, box: int) -> np.ndarray:
     """Sum over a box x box window (zero outside the frame), by shifted additions."""
     if box == 1:
         return d.copy()
+    try:
+        import cv2
+
+        return cv2.boxFilter(np.ascontiguousarray(d, dtype=np.float32), cv2.CV_32F, (box, box),
+                             normalize=False, borderType=cv2.BORDER_CONSTANT)
+    except (ImportError, AttributeError):  # pragma: no cover - OpenCV is a dependency
+        pass
     r = box // 2
     t = d.copy()
     for k in range(1, r + 1):
@@ -397,7 +422,7 @@ def detect_frame(
     if idx.size == 0:
         return _empty_clusters()
     h, w = d.shape
-    labels, n = ndimage.label(mask, structure=_EIGHT)
+    labels, n = _label8(mask)
     lflat = labels.ravel()
     lab = lflat[idx] - 1
     dflat = d.ravel()
