@@ -201,52 +201,72 @@ def project(
             s_i = np.bincount(index, weights=vals.astype(np.float64, copy=False),
                               minlength=size)
             return _profile_from(geo, s_i, None)
-    u, v = pixel_coordinates((h, w), orientation_deg, centre)
-    if row_step > 1:
-        u, v, img = u[::row_step], v[::row_step], img[::row_step]
-        mask = None if mask is None else mask[::row_step]
-        variance = None if variance is None else variance[::row_step]
-    if mask is not None and mask.any():
-        keep = ~mask
-        u, v, vals = u[keep], v[keep], img[keep]
-        var = variance[keep] if variance is not None else None
+    nx, nr = normal_vector(orientation_deg)
+    sx, sr = -nr, nx  # s = (sin t, cos t)
+    step = max(1, int(row_step))
+    x = np.arange(w, dtype=np.float64) - centre[0]
+    rr = np.arange(0, h, step, dtype=np.float64) - centre[1]
+    img_s = img[::step] if step > 1 else img
+    mask_s = None if mask is None else (mask[::step] if step > 1 else mask)
+    var_s = None if variance is None else (variance[::step] if step > 1 else variance)
+    keep = None if mask_s is None or not mask_s.any() else ~mask_s
+    # Extent of u and v over the usable pixels (the region's corners when none is masked).
+    if keep is None:
+        cu = [nx * xe + nr * re for xe in (x[0], x[-1]) for re in (rr[0], rr[-1])]
+        cv = [sx * xe + sr * re for xe in (x[0], x[-1]) for re in (rr[0], rr[-1])]
+        umin, umax, vmin, vmax = min(cu), max(cu), min(cv), max(cv)
     else:
-        vals = img.ravel()
-        var = variance.ravel() if variance is not None else None
-    if u.size == h * w and row_step == 1:
-        # Nothing masked: the extremes sit at the corners of the region.
-        umin, umax = float(min(u[0, 0], u[0, -1], u[-1, 0], u[-1, -1])), float(
-            max(u[0, 0], u[0, -1], u[-1, 0], u[-1, -1]))
-        vmin, vmax = float(min(v[0, 0], v[0, -1], v[-1, 0], v[-1, -1])), float(
-            max(v[0, 0], v[0, -1], v[-1, 0], v[-1, -1]))
-        u, v = u.ravel(), v.ravel()
-    else:
-        u, v = u.ravel(), v.ravel()
-        umin, umax = float(u.min()), float(u.max())
-        vmin, vmax = float(v.min()), float(v.max())
+        uu = nx * x[None, :] + nr * rr[:, None]
+        umin = float(np.min(uu, where=keep, initial=np.inf))
+        umax = float(np.max(uu, where=keep, initial=-np.inf))
+        uu = sx * x[None, :] + sr * rr[:, None]
+        vmin = float(np.min(uu, where=keep, initial=np.inf))
+        vmax = float(np.max(uu, where=keep, initial=-np.inf))
+        del uu
+    umin, umax, vmin, vmax = float(umin), float(umax), float(vmin), float(vmax)
     nb = int(np.floor((umax - umin) / bin_width)) + 1
-    tmp = u - umin
-    tmp *= 1.0 / bin_width
-    index = tmp.astype(np.intp)
-    np.minimum(index, nb - 1, out=index)
     n_strips = max(1, int(n_strips))
+    span = max(vmax - vmin, 1e-9)
+    # Scaled coordinates, each made in one broadcast pass: t = (u - umin)/bin_width in
+    # [0, nb) and q = (v - vmin) * n_strips/span in [0, n_strips). The bin sums are taken
+    # of t and q and converted back, so u and v themselves are never stored.
+    inv = 1.0 / bin_width
+    t = (nx * inv * x)[None, :] + ((nr * rr - umin) * inv)[:, None]
+    index = t.astype(np.intp)
+    np.minimum(index, nb - 1, out=index)
+    qs = n_strips / span
+    q = (sx * qs * x)[None, :] + ((sr * rr - vmin) * qs)[:, None]
     if n_strips > 1:
-        span = max(vmax - vmin, 1e-9)
-        np.subtract(v, vmin, out=tmp)
-        tmp *= n_strips / span
-        ks = tmp.astype(np.intp)
+        ks = q.astype(np.intp)
         np.minimum(ks, n_strips - 1, out=ks)
         ks *= nb
         index += ks
         del ks
-    del tmp
+    if keep is not None:
+        index, t, q = index[keep], t[keep], q[keep]
+        vals = img_s[keep]
+        var = var_s[keep] if var_s is not None else None
+    else:
+        index, t, q = index.ravel(), t.ravel(), q.ravel()
+        vals = img_s.ravel()
+        var = var_s.ravel() if var_s is not None else None
     size = nb * n_strips
     cnt = np.bincount(index, minlength=size).astype(np.float64)
     s_i = np.bincount(index, weights=vals.astype(np.float64, copy=False), minlength=size)
-    s_u = np.bincount(index, weights=u, minlength=size)
-    s_uu = np.bincount(index, weights=np.square(u), minlength=size)
-    s_v = np.bincount(index, weights=v, minlength=size)
+    s_q = np.bincount(index, weights=q, minlength=size)
+    del q
+    s_t = np.bincount(index, weights=t, minlength=size)
+    np.square(t, out=t)
+    s_tt = np.bincount(index, weights=t, minlength=size)
+    del t
     s_var = np.bincount(index, weights=var, minlength=size) if var is not None else None
+    # back to px: u = umin + t * bin_width, v = vmin + q / qs
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mt = np.where(cnt > 0, s_t / np.maximum(cnt, 1.0), 0.0)
+        s_u = (umin + bin_width * mt) * cnt
+        s_uu = (bin_width**2 * np.maximum(s_tt / np.maximum(cnt, 1.0) - mt**2, 0.0)
+                + (umin + bin_width * mt) ** 2) * cnt
+        s_v = vmin * cnt + s_q / qs
     ok = cnt > 0
     c = cnt[ok]
     mu = s_u[ok] / c
