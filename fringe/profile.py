@@ -231,35 +231,51 @@ def project(
     # [0, nb) and q = (v - vmin) * n_strips/span in [0, n_strips). The bin sums are taken
     # of t and q and converted back, so u and v themselves are never stored.
     inv = 1.0 / bin_width
-    t = (nx * inv * x)[None, :] + ((nr * rr - umin) * inv)[:, None]
-    index = t.astype(np.intp)
-    np.minimum(index, nb - 1, out=index)
     qs = n_strips / span
-    q = (sx * qs * x)[None, :] + ((sr * rr - vmin) * qs)[:, None]
-    if n_strips > 1:
-        ks = q.astype(np.intp)
-        np.minimum(ks, n_strips - 1, out=ks)
-        ks *= nb
-        index += ks
-        del ks
-    if keep is not None:
-        index, t, q = index[keep], t[keep], q[keep]
-        vals = img_s[keep]
-        var = var_s[keep] if var_s is not None else None
-    else:
-        index, t, q = index.ravel(), t.ravel(), q.ravel()
-        vals = img_s.ravel()
-        var = var_s.ravel() if var_s is not None else None
     size = nb * n_strips
-    cnt = np.bincount(index, minlength=size).astype(np.float64)
-    s_i = np.bincount(index, weights=vals.astype(np.float64, copy=False), minlength=size)
-    s_q = np.bincount(index, weights=q, minlength=size)
-    del q
-    s_t = np.bincount(index, weights=t, minlength=size)
-    np.square(t, out=t)
-    s_tt = np.bincount(index, weights=t, minlength=size)
-    del t
-    s_var = np.bincount(index, weights=var, minlength=size) if var is not None else None
+    tx = nx * inv * x
+    qx = sx * qs * x
+    tr = (nr * rr - umin) * inv
+    qr = (sr * rr - vmin) * qs
+    cnt = np.zeros(size)
+    s_i = np.zeros(size)
+    s_q = np.zeros(size)
+    s_t = np.zeros(size)
+    s_tt = np.zeros(size)
+    s_var = np.zeros(size) if var_s is not None else None
+    # Row blocks of about a quarter megapixel: the temporaries stay small and warm.
+    block = max(1, 262_144 // max(w, 1))
+    parts: list[np.ndarray] | None = [] if key is not None else None
+    for r0 in range(0, rr.size, block):
+        r1 = min(rr.size, r0 + block)
+        t = tx[None, :] + tr[r0:r1, None]
+        q = qx[None, :] + qr[r0:r1, None]
+        index = t.astype(np.intp)
+        np.minimum(index, nb - 1, out=index)
+        if n_strips > 1:
+            ks = q.astype(np.intp)
+            np.minimum(ks, n_strips - 1, out=ks)
+            ks *= nb
+            index += ks
+        vals = img_s[r0:r1]
+        var = var_s[r0:r1] if var_s is not None else None
+        if keep is not None:
+            k = keep[r0:r1]
+            index, t, q, vals = index[k], t[k], q[k], vals[k]
+            var = var[k] if var is not None else None
+        else:
+            index, t, q, vals = index.ravel(), t.ravel(), q.ravel(), vals.ravel()
+            var = var.ravel() if var is not None else None
+        if parts is not None:
+            parts.append(index)
+        cnt += np.bincount(index, minlength=size)
+        s_i += np.bincount(index, weights=vals.astype(np.float64, copy=False), minlength=size)
+        s_q += np.bincount(index, weights=q, minlength=size)
+        s_t += np.bincount(index, weights=t, minlength=size)
+        np.square(t, out=t)
+        s_tt += np.bincount(index, weights=t, minlength=size)
+        if s_var is not None:
+            s_var += np.bincount(index, weights=var, minlength=size)
     # back to px: u = umin + t * bin_width, v = vmin + q / qs
     with np.errstate(invalid="ignore", divide="ignore"):
         mt = np.where(cnt > 0, s_t / np.maximum(cnt, 1.0), 0.0)
@@ -278,6 +294,7 @@ def project(
         "centre": (float(centre[0]), float(centre[1])),
     }
     if key is not None:
+        index = np.concatenate(parts)
         for arr in (index, *(x for x in geo.values() if isinstance(x, np.ndarray))):
             arr.flags.writeable = False  # shared between calls: never changed in place
         if len(_GEOMETRY) >= 4:
