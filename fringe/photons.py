@@ -400,18 +400,18 @@ def detect_frame(
     """
     if box < 1 or box % 2 == 0:
         raise FringeError(f"detection box must be an odd number of pixels >= 1, got {box}")
-    d = np.asarray(frame, dtype=np.float32) - np.asarray(bias, dtype=np.float32)
+    d = np.subtract(frame, np.asarray(bias, dtype=np.float32), dtype=np.float32)
     if d.ndim != 2:
         raise FringeError(f"expected a 2-D frame, got shape {d.shape}")
     if offset == "frame":
+        # Offset of this frame: median of a 2048-pixel sample, then one 3-sigma clipped
+        # mean (standard error about 0.03 of the noise: ample for a 5-sigma threshold).
         sample = d.ravel()
-        if sample.size > 4096:
-            sample = sample[:: sample.size // 4096]
+        if sample.size > 2048:
+            sample = sample[:: sample.size // 2048]
         m = float(np.median(sample))
-        for _ in range(3):
-            sel = sample[np.abs(sample - m) < 3.0 * noise_dn]
-            if sel.size < 16:
-                break
+        sel = sample[np.abs(sample - m) < 3.0 * noise_dn]
+        if sel.size >= 16:
             m = float(sel.mean(dtype=np.float64))
         d -= np.float32(m)
     else:
