@@ -481,8 +481,8 @@ def analyze_image(
     # Single-slit (sinc²) envelope, when the envelope is resolved in the region.
     u_env = u_star
     if fit.n_basis >= 3 and extent_u / period >= 6 and np.min(a_curve) < 0.5 * np.max(a_curve):
-        env = fit_sinc2_envelope(prof1, omega=fit.omega, kappa=fit.kappa, phi=fit.phi,
-                                 sigma=_bin_sigma(prof1, noise), u_peak=u_star)
+        env = fit_sinc2_envelope(prof_v, omega=fit.omega, kappa=fit.kappa, phi=fit.phi,
+                                 sigma=_bin_sigma(prof_v, noise), u_peak=u_star)
         if env is not None and env.width_err < 0.2 * env.width:
             u_env = env.u0
             res.context["envelope_fit"] = env

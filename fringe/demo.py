@@ -173,6 +173,8 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
                   t["visibility_linear_red_centre_expected"], rel_floor=0.02)
         table.add("wavelength", r.get("wavelength_nm"), r.get("wavelength_nm_err"), "nm",
                   o["wavelength_nm"])
+        table.add("slit width", r.get("slit_width_um"), r.get("slit_width_um_err"), "um",
+                  o["slit_width_um"], rel_floor=0.02)
         _warnings(out, r)
 
     # Bench 3: filtered lamp behind a slit source: partial coherence.
