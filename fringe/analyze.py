@@ -265,13 +265,15 @@ def analyze_image(
     n_valid = int((~bad).sum())
     if n_valid < 0.25 * h * w:
         n_nonfinite = int((~np.isfinite(img)).sum())
-        detail = f"{n_nonfinite} non-finite" if n_nonfinite else "saturated or bad"
         if n_valid == 0:
-            return res.fail(f"no usable pixels: all {h * w} are {detail}"
-                            if n_nonfinite in (0, h * w) else
-                            f"no usable pixels ({n_nonfinite} non-finite, the rest saturated "
-                            "or bad)")
-        return res.fail(f"only {n_valid} of {h * w} pixels are usable (the rest {detail})")
+            if n_nonfinite == h * w:
+                return res.fail(f"no usable pixels: all {h * w} are NaN or infinite")
+            if n_nonfinite == 0:
+                return res.fail(f"no usable pixels: all {h * w} are saturated or bad")
+            return res.fail(f"no usable pixels ({n_nonfinite} NaN or infinite, the rest "
+                            "saturated or bad)")
+        return res.fail(f"only {n_valid} of {h * w} pixels are usable (the others are "
+                        f"{'NaN, infinite, ' if n_nonfinite else ''}saturated or bad)")
     if bad.any():
         img = np.where(bad, 0.0, img)
     sample = img[::7, ::5]  # a quick look first: most images vary within a sample
@@ -641,15 +643,17 @@ def _crop(arr: np.ndarray | None, roi: Sequence[int] | None) -> np.ndarray | Non
     return arr[y:y + h, x:x + w]
 
 
-def _check_roi(roi: Sequence[int] | None, shape: tuple[int, int], name: str) -> None:
+def _check_roi(roi: Sequence[int] | None, shape: tuple[int, int],
+               name: str | None = None) -> None:
     if roi is None:
         return
+    where = f"{name}: " if name else ""
     if len(roi) != 4:
-        raise FringeError(f"{name}: --roi needs four integers X Y W H, got {list(roi)}")
+        raise FringeError(f"{where}--roi needs four integers X Y W H, got {list(roi)}")
     x, y, w, h = (int(v) for v in roi)
     hh, ww = shape
     if w < 1 or h < 1 or x < 0 or y < 0 or x + w > ww or y + h > hh:
-        raise FringeError(f"{name}: region X={x} Y={y} W={w} H={h} does not fit in the "
+        raise FringeError(f"{where}region X={x} Y={y} W={w} H={h} does not fit in the "
                           f"{ww} x {hh} image")
 
 
@@ -724,7 +728,7 @@ def _measure_frame(frame, cal, roi, options, infer_fn=None) -> FringeResult:
 
     res = FringeResult(file=frame.file, frame=frame.index)
     try:
-        _check_roi(roi, frame.data.shape, frame.file)
+        _check_roi(roi, frame.data.shape)  # the record names the file already
         calib = calibrate.calibrate_frame(frame, cal,
                                           reject_cosmics=bool(options.get("reject_cosmics")))
     except FringeError as exc:

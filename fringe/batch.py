@@ -1834,7 +1834,8 @@ def add_parser(subparsers) -> None:
                         "name) or glob patterns such as 'runs/*.tif'")
     p.add_argument("-o", "--out", "--output", dest="out", required=True, metavar="FILE",
                    help="results table (CSV, or JSON Lines for .jsonl/.ndjson/.json); the "
-                        "summary is written beside it as FILE.summary.json and .txt")
+                        "summary is written beside it (results.csv gives "
+                        "results.summary.json and results.summary.txt)")
     p.add_argument("--format", choices=["csv", "json"], default=None,
                    help="table format (default: from the --out extension, else CSV)")
     g = p.add_mutually_exclusive_group()

@@ -1196,8 +1196,9 @@ def build_calibration(
         try:
             _flat = _flat_master(fstack, fmetas, cal.dark, method)
         except FringeError as exc:
-            names = ", ".join(str(m["file"]) for m in fmetas[:3])
-            more = " ..." if len(fmetas) > 3 else ""
+            files = list(dict.fromkeys(str(m["file"]) for m in fmetas))
+            names = ", ".join(files[:3])
+            more = " ..." if len(files) > 3 else ""
             raise FringeError(f"{names}{more}: {exc}") from None
         cal.flat, cal.flat_err, cal.flat_bad = _flat
         cal.flat_files = flats

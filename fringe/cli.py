@@ -46,6 +46,17 @@ def _value_with_error(text: str) -> tuple[float, float]:
             f"got {text!r}") from None
 
 
+def _positive(text: str) -> float:
+    """argparse type: a positive finite number."""
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not (v > 0 and v < float("inf")):
+        raise argparse.ArgumentTypeError(f"must be a positive number, got {text!r}")
+    return v
+
+
 def _add_calibration(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("calibration")
     g.add_argument("--dark", action="append", default=[], metavar="FILE",
@@ -67,7 +78,7 @@ def _add_input(p: argparse.ArgumentParser) -> None:
                    help="colour channel to measure (auto: strongest unsaturated fringes)")
     g.add_argument("--no-srgb", dest="srgb", action="store_false", default="auto",
                    help="do not decode 8-bit sRGB inputs (PNG/JPEG) to linear light")
-    g.add_argument("--max-pixels", type=float, default=None,
+    g.add_argument("--max-pixels", type=_positive, default=None,
                    help="refuse images with more pixels than this (default 2e8)")
 
 
@@ -336,6 +347,10 @@ def _cmd_calib(args: argparse.Namespace, out, err) -> int:
                       f"{100 * float(np.std(flat[~flat_bad])):.2f} % -> {args.output}\n")
             return 0
         # gain
+        for a, b in [*args.flat_pair, args.dark_pair]:
+            if os.path.realpath(a) == os.path.realpath(b):
+                raise FringeError(f"{a}: given twice as one pair; a pair needs two frames "
+                                  "taken one after the other")
         pairs = []
         for a, b in args.flat_pair:
             pairs.append((io.read_frame(a, channel=args.channel).data,
@@ -343,7 +358,11 @@ def _cmd_calib(args: argparse.Namespace, out, err) -> int:
         da, db = args.dark_pair
         fa = io.read_frame(da, channel=args.channel)
         dark_pair = (fa.data, io.read_frame(db, channel=args.channel).data)
-        pt = calibrate.photon_transfer(pairs, dark_pair, full_scale=fa.meta.get("full_scale"))
+        try:
+            pt = calibrate.photon_transfer(pairs, dark_pair,
+                                           full_scale=fa.meta.get("full_scale"))
+        except FringeError as exc:
+            raise FringeError(f"{da}, {args.flat_pair[0][0]} ...: {exc}") from None
         if args.format == "json":
             out.write(json.dumps(pt.to_dict()) + "\n")
         else:

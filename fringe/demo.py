@@ -48,12 +48,15 @@ class _Table:
         self.rows: list[tuple[str, str, str, str]] = []
 
     def add(self, name: str, value: Any, err: Any, unit: str, truth: Any = None,
-            tol_sigma: float = 3.0, rel_floor: float = 0.0) -> None:
-        meas = format_value(value, err, unit)
+            tol_sigma: float = 3.0, rel_floor: float = 0.0, digits: int = 3) -> None:
+        if err is None and isinstance(value, (int, float)):
+            meas = f"{value:.{digits}g} {unit}".strip()  # a statistic without its own error
+        else:
+            meas = format_value(value, err, unit)
         if truth is None:
             self.rows.append((name, meas, "", ""))
             return
-        tr = f"{truth:.6g} {unit}".strip()
+        tr = f"{truth:.4g} {unit}".strip()
         verdict = ""
         if value is not None and err is not None:
             dev = abs(value - truth)
@@ -143,8 +146,9 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
         table.add("slit width", r.get("slit_width_um"), r.get("slit_width_um_err"), "um",
                   o["slit_width_um"])
         if r.get("missing_orders"):
+            scene_orders = str(t.get("missing_orders", "")).replace("+-", "±")
             out.write(f"    missing orders: ±{', ±'.join(str(m) for m in r.missing_orders)} "
-                      f"(scene: {t.get('missing_orders')})\n")
+                      f"(scene: {scene_orders})\n")
         _warnings(out, r)
 
     # Bench 2: phone JPEG of a red laser on a wall, scale from the ruler in the picture.
@@ -241,8 +245,10 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
         if dt:
             table.add("drift", float(coef[0]) / dt, rate_err / dt, "rad/s",
                       t["drift_rad_per_s"])
-        table.add("jitter (RMS after drift)", float(np.std(resid, ddof=2)), None, "rad",
-                  t["jitter_rad"])
+        jit = float(np.std(resid, ddof=2))
+        # standard error of an RMS from n - 2 degrees of freedom: s / sqrt(2 (n - 2))
+        table.add("jitter (RMS after drift)", jit, jit / np.sqrt(2 * max(ph.size - 2, 1)),
+                  "rad", t["jitter_rad"], tol_sigma=3.0, rel_floor=0.05)
         table.add("peak-to-peak phase", float(np.ptp(ph)) / (2 * np.pi), None, "waves")
 
     # Bench 4 again: the first frame as a wavefront check (Fourier-transform method).
@@ -295,9 +301,9 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
         table.add("visibility", r.visibility, r.visibility_err, "",
                   t.get("visibility_expected_background_removed", t["visibility"]),
                   rel_floor=0.03)
-        table.add("significance", r.get("significance"), None, "sigma")
+        table.add("significance", r.get("significance"), None, "sigma", digits=3)
         if r.get("photons_needed") is not None:
-            table.add("photons for 1 % on V", r.get("photons_needed"), None, "")
+            table.add("photons for 1 % on V", r.get("photons_needed"), None, "", digits=2)
         build = r.get("build_up") or []
         if build:
             out.write("    build-up (photons: visibility):" + "".join(

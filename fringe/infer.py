@@ -50,6 +50,8 @@ def _pair(x: Any, name: str) -> Measured:
         v, e = float(x), 0.0
     if not np.isfinite(v):
         raise FringeError(f"{name} must be a finite number, got {v}")
+    if v <= 0:
+        raise FringeError(f"{name} must be positive, got {v:g}")
     return v, abs(e)
 
 

@@ -16,6 +16,7 @@ SAMPLES = Path(__file__).resolve().parent.parent / "sample-images"
 SCEN = json.loads((SAMPLES / "scenario.json").read_text())["scenes"]
 
 
+@pytest.mark.slow
 def test_demo_runs_and_agrees(tmp_path, capsys):
     rc = main(["demo", "--out", str(tmp_path)])
     text = capsys.readouterr().out
