@@ -307,8 +307,9 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
         build = r.get("build_up") or []
         if build:
             out.write("    build-up (photons: visibility):" + "".join(
-                f"  {b.get('photons', 0):.0f}: {b.get('visibility', float('nan')):.3f}"
-                for b in build[:: max(1, len(build) // 5)]) + "\n")
+                f"  {b.get('photons', 0):.0f}: "
+                f"{format_value(b.get('visibility'), b.get('visibility_err'))}"
+                for b in build[:: max(1, len(build) // 4)]) + "\n")
         _warnings(out, r)
 
     bench("Bench 1 - 532 nm laser, double slit, 12-bit mono sensor", green)
