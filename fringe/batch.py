@@ -42,6 +42,7 @@ import numpy as np
 
 from fringe._util import FringeError, atomic_output
 from fringe.result import MEASURED_KEYS
+from fringe.result import jsonable as _jsonable
 
 __all__ = [
     "IMAGE_EXTENSIONS",
@@ -1650,18 +1651,6 @@ class _Runner:
         _write_atomic(self.outcome.summary_json,
                       json.dumps(_jsonable(doc), indent=2, allow_nan=False) + "\n")
         _write_atomic(self.outcome.summary_txt, summary_text(self.outcome))
-
-
-def _jsonable(obj: Any) -> Any:
-    if isinstance(obj, dict):
-        return {k: _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    if isinstance(obj, np.generic):
-        return _jsonable(obj.item())
-    return obj
 
 
 def _write_atomic(path: str, text: str) -> None:

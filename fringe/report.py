@@ -7,9 +7,10 @@ import io as _io
 import json
 import math
 from collections.abc import Iterable, Sequence
-from typing import Any, TextIO
+from typing import TextIO
 
 from fringe.result import MEASURED_KEYS, FringeResult
+from fringe.result import jsonable as _jsonable
 
 __all__ = ["format_value", "text_table", "json_line", "CsvStream", "TEXT_COLUMNS"]
 
@@ -70,14 +71,6 @@ def text_table(results: Sequence[FringeResult], extra: Sequence[tuple[str, str, 
         for line in n:
             out.write(line + "\n")
     return out.getvalue()
-
-
-def _jsonable(value: Any) -> Any:
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    if hasattr(value, "item"):
-        return value.item()
-    return value
 
 
 def json_line(result: FringeResult) -> str:

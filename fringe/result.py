@@ -6,7 +6,7 @@ import math
 from dataclasses import dataclass, field
 from typing import Any
 
-__all__ = ["FringeResult", "MEASURED_KEYS"]
+__all__ = ["FringeResult", "MEASURED_KEYS", "jsonable"]
 
 #: Measured quantities that always come with an ``_err`` partner (1 sigma), with units.
 MEASURED_KEYS: dict[str, str] = {
@@ -93,9 +93,24 @@ class FringeResult:
         return out
 
 
-def _clean(value: Any) -> Any:
-    if hasattr(value, "item"):
-        value = value.item()
+def jsonable(value: Any) -> Any:
+    """A value ready for JSON: numpy scalars and arrays to Python, NaN and inf to None.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> jsonable({"a": np.float64(1.5), "b": [np.nan, np.int64(2)], "c": np.arange(2)})
+    {'a': 1.5, 'b': [None, 2], 'c': [0, 1]}
+    """
+    if isinstance(value, dict):
+        return {k: jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [jsonable(v) for v in value]
+    if hasattr(value, "tolist") and not isinstance(value, (str, bytes)):
+        return jsonable(value.tolist())  # numpy scalar or array
     if isinstance(value, float) and not math.isfinite(value):
         return None
     return value
+
+
+_clean = jsonable

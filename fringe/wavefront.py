@@ -54,6 +54,7 @@ from typing import Any
 import numpy as np
 
 from fringe._util import FringeError, atomic_output, fold_angle_deg
+from fringe.result import jsonable as _clean
 
 __all__ = [
     "MAX_ZERNIKE_TERMS",
@@ -1984,16 +1985,6 @@ class WavefrontResult:
         out["tolerance_pass"] = self.tolerance_pass
         out["warnings"] = list(self.warnings)
         return out
-
-
-def _clean(value: Any) -> Any:
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    if isinstance(value, (list, tuple)):
-        return [_clean(v) for v in value]
-    return value
 
 
 def _removed(remove_defocus: bool) -> list[int]:
