@@ -1770,6 +1770,12 @@ def run_batch(inputs: Sequence[str | os.PathLike], out_path: str | os.PathLike, 
 # --------------------------------------------------------------------------------------------
 
 
+def _positive_float(text: str) -> float:
+    from fringe.cli import _positive
+
+    return _positive(text)
+
+
 def _positive_int(text: str) -> int:
     import argparse
 
@@ -1779,18 +1785,6 @@ def _positive_int(text: str) -> int:
         raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
     if v < 1:
         raise argparse.ArgumentTypeError(f"must be at least 1, got {v}")
-    return v
-
-
-def _positive_float(text: str) -> float:
-    import argparse
-
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not (v > 0 and math.isfinite(v)):
-        raise argparse.ArgumentTypeError(f"must be a positive number, got {text!r}")
     return v
 
 

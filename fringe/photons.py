@@ -2167,15 +2167,9 @@ def analyze_counts_table(
 
 
 def _positive_float(text: str) -> float:
-    import argparse
+    from fringe.cli import _positive
 
-    try:
-        val = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not (val > 0 and math.isfinite(val)):
-        raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}")
-    return val
+    return _positive(text)
 
 
 def _odd_box(text: str) -> int:
