@@ -312,12 +312,35 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
                 for b in build[:: max(1, len(build) // 4)]) + "\n")
         _warnings(out, r)
 
+    # Bench 6: known lines through one double slit.
+    def lines() -> None:
+        nonlocal failed
+        s = scen["linecheck"]
+        f, o, t = s["files"], s["optics"], s["truth"]
+        geo = {"pixel_um": (o["pixel_um"], 0.005), "distance_mm": (o["distance_mm"], 0.1),
+               "slit_separation_um": (o["slit_separation_um"], 1.0)}
+        out.write(f"    {f['hene']} and {f['sodium']}, dark stack {f['dark']}\n")
+        for key, label, nominal in (
+                ("hene", "HeNe wavelength", o["hene_wavelength_nm"]),
+                ("sodium", "sodium wavelength (D2:D1 = 2:1 mean)",
+                 t["sodium"]["wavelength_nm_weighted_mean"])):
+            r = measure(root / f[key], dark=root / f["dark"], **geo)
+            records.append(r.to_dict())
+            objects.append(r)
+            if not r.ok:
+                failed = True
+                out.write(f"    {f[key]}: {r.error}\n")
+                continue
+            table.add(label, r.get("wavelength_nm"), r.get("wavelength_nm_err"), "nm", nominal)
+            _warnings(out, r)
+
     bench("Bench 1 - 532 nm laser, double slit, 12-bit mono sensor", green)
     bench("Bench 2 - 650 nm diode laser on a wall, phone JPEG with a ruler", phone)
     bench("Bench 3 - filtered mercury lamp behind a slit source (partial coherence)", lamp)
     bench("Bench 4 - HeNe interferometer stack with thermal drift", drift)
     bench("Bench 4b - the same interferometer: wavefront from one frame", wavefront_check)
     bench("Bench 5 - two-beam fringes, a few photons per frame", photon_run)
+    bench("Bench 6 - known lines: HeNe laser and sodium lamp through one double slit", lines)
 
     # Figures and the HTML report (when matplotlib is installed).
     try:

@@ -1276,6 +1276,8 @@ screen, visibility, phase, camera settings); `MANIFEST.sha256` checks the files
   (partial spatial coherence).
 - Bench 4, `hene633-drift-stack.tif`: drifting HeNe tilt fringes, 0.1 s frame interval.
 - Bench 5, `photons-*.tif`: photon-counting run and its dark stack.
+- Bench 6, `hene633-slits.tif`, `sodium589-slits.tif`, `linecheck-dark.tif`: one double
+  slit lit by a HeNe laser and by a sodium lamp, for checking known lines.
 
 ## Safety
 
@@ -1534,6 +1536,53 @@ def make_samples(outdir: str | Path, *, seed: int = 2026) -> dict[str, Any]:
                        "cosmic_rays": dtruth["cosmic_rays"]},
     }
 
+    # Bench 6: a HeNe laser and a sodium lamp through one double slit (laser-line checks).
+    xrngs = [np.random.default_rng(q)
+             for q in np.random.SeedSequence([int(seed), 6]).spawn(3)]
+    k_shape = (240, 320)
+    k_opt = {"slit_separation_um": 1000.0, "slit_width_um": 180.0, "distance_mm": 250.0,
+             "pixel_um": 5.5}
+    k_cam = {"gain_dn_per_e": 0.5, "read_noise_e": 4.0, "offset_dn": 100.0, "dark_e": 8.0,
+             "bit_depth": 16, "prnu": 0.004, "dsnu_dn": 1.0, "hot_pixels": 8, "fixed_seed": 4806}
+    k_peak = 24000.0
+    hene = two_slit_image(k_shape, wavelength_nm=632.8, **k_opt, orientation_deg=20.0,
+                          axis_offset_px=(4.0, -6.0), peak_irradiance=k_peak)
+    put_tiff("hene633-slits.tif", camera(hene, rng=xrngs[0], **k_cam))
+    # sodium D2 and D1 (air), D2 about twice as bright: an incoherent sum of two patterns
+    d2, d1 = 588.9950, 589.5924
+    na = (2.0 * two_slit_image(k_shape, wavelength_nm=d2, **k_opt, orientation_deg=110.0,
+                               axis_offset_px=(-5.0, 3.0), peak_irradiance=k_peak)
+          + two_slit_image(k_shape, wavelength_nm=d1, **k_opt, orientation_deg=110.0,
+                           axis_offset_px=(-5.0, 3.0), peak_irradiance=k_peak)) / 3.0
+    put_tiff("sodium589-slits.tif", camera(na, rng=xrngs[1], **k_cam))
+    put_tiff("linecheck-dark.tif", camera(np.zeros((3, *k_shape)), rng=xrngs[2], **k_cam))
+    na_mean = (2.0 * d2 + d1) / 3.0
+
+    def _per(lam_nm: float) -> float:
+        return _sig(lam_nm * 1e-9 * k_opt["distance_mm"] * 1e-3
+                    / (k_opt["slit_separation_um"] * 1e-6 * k_opt["pixel_um"] * 1e-6))
+
+    scenes["linecheck"] = {
+        "bench": 6,
+        "description": "one double slit and sensor, lit by a HeNe laser and then by a sodium "
+                       "lamp (D2 and D1 lines, D2 about twice as bright); three dark frames in "
+                       "one stack",
+        "files": {"hene": "hene633-slits.tif", "sodium": "sodium589-slits.tif",
+                  "dark": "linecheck-dark.tif"},
+        "optics": {**k_opt, "hene_wavelength_nm": 632.8,
+                   "sodium_lines_nm": [d2, d1], "sodium_weights": [2, 1]},
+        "camera": {**k_cam, "shape": list(k_shape), "stored_as": "uint16 (16-bit values)"},
+        "peak_irradiance_e": k_peak,
+        "truth": {
+            "hene": {"period_px": _per(632.8), "orientation_deg": 20.0, "visibility": 1.0},
+            "sodium": {"period_px": _per(na_mean), "orientation_deg": 110.0,
+                       "wavelength_nm_weighted_mean": _sig(na_mean),
+                       "note": "two incoherent line patterns; their fringes slip by 1/986 "
+                               "of a period per fringe, so the visibility stays near 1 "
+                               "over this field"},
+        },
+    }
+
     scenario = {
         "lab": "Lantern Street Optics Lab (fictional)",
         "generator": "fringe.synth.make_samples",
@@ -1570,9 +1619,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = parser.parse_args(argv)
     scenario = make_samples(args.outdir, seed=args.seed)
     for name, scene in scenario["scenes"].items():
-        t = scene["truth"]
-        print(f"{name}: period {t['period_px']} px, orientation {t['orientation_deg']} deg, "
-              f"visibility {t['visibility']}")
+        truths = scene["truth"]
+        parts = truths.items() if "period_px" not in truths else [(None, truths)]
+        for sub, t in parts:
+            label = name if sub is None else f"{name}/{sub}"
+            vis = t.get("visibility", "-")
+            print(f"{label}: period {t['period_px']} px, orientation {t['orientation_deg']} "
+                  f"deg, visibility {vis}")
     return 0
 
 

@@ -77,3 +77,25 @@ def test_drift_stack_phase_series():
 def test_samples_measure_ok(name):
     r = fringe.measure(SAMPLES / name)
     assert r.ok, r.error
+
+
+@pytest.mark.parametrize("which, nominal_nm", [("hene", 632.8), ("sodium", None)])
+def test_laser_and_lamp_lines_from_sample(which, nominal_nm):
+    # HeNe 632.8 nm (in air; references.md sec. 5, from the CIPM 2007 vacuum value 632.9908
+    # nm) and the sodium D lines 588.9950 / 589.5924 nm in air (HyperPhysics; NIST ASD value
+    # from memory), D2 about twice as bright as D1, recovered from the bundled captures
+    # within two standard uncertainties.
+    s = SCEN["linecheck"]
+    f, o = s["files"], s["optics"]
+    if nominal_nm is None:
+        (d2, d1), (w2, w1) = o["sodium_lines_nm"], o["sodium_weights"]
+        assert (d2, d1) == (588.995, 589.5924)
+        nominal_nm = (w2 * d2 + w1 * d1) / (w2 + w1)
+    r = fringe.measure(SAMPLES / f[which], dark=SAMPLES / f["dark"],
+                       pixel_um=(o["pixel_um"], 0.0), distance_mm=(o["distance_mm"], 0.0),
+                       slit_separation_um=(o["slit_separation_um"], 0.0))
+    assert r.ok, r.error
+    assert abs(r.wavelength_nm - nominal_nm) <= 2 * r.wavelength_nm_err + 1e-3, (
+        r.wavelength_nm, r.wavelength_nm_err)
+    # the slit width from the single-slit envelope (Hecht, Optics, 2017, sec. 10.2.1)
+    assert r.slit_width_um == pytest.approx(o["slit_width_um"], rel=0.01)
