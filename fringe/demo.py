@@ -106,6 +106,17 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
     out.write(f"\nSample scenario: {root}\n")
     table = _Table(out)
 
+    def keep(r, *, figure: bool = True, where: str = "") -> bool:
+        """Record a result; on failure say so and mark the demo failed."""
+        nonlocal failed
+        records.append(r.to_dict())
+        if figure:
+            objects.append(r)
+        if not r.ok:
+            failed = True
+            out.write(f"    {where or 'error'}: {r.error}\n")
+        return r.ok
+
     def bench(title: str, job: Callable[[], None]) -> None:
         nonlocal failed
         out.write(f"\n{title}\n")
@@ -121,7 +132,6 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
 
     # Bench 1: green laser, double slit, mono sensor with darks and flats.
     def green() -> None:
-        nonlocal failed
         s = scen["green532"]
         f, o, t = s["files"], s["optics"], s["truth"]
         cal = build_calibration([root / p for p in f["darks"]], [root / p for p in f["flats"]])
@@ -130,11 +140,7 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
         r = measure(root / f["science"], dark=cal, pixel_um=(o["pixel_um"], 0.01),
                     distance_mm=(o["distance_mm"], 0.5),
                     slit_separation_um=(o["slit_separation_um"], 5.0))
-        records.append(r.to_dict())
-        objects.append(r)
-        if not r.ok:
-            failed = True
-            out.write(f"    error: {r.error}\n")
+        if not keep(r):
             return
         table.add("period", r.period_px, r.period_px_err, "px", t["period_px"])
         table.add("orientation", r.orientation_deg, r.orientation_deg_err, "deg",
@@ -153,7 +159,6 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
 
     # Bench 2: phone JPEG of a red laser on a wall, scale from the ruler in the picture.
     def phone() -> None:
-        nonlocal failed
         s = scen["phone_red650"]
         f, o, t, ruler = s["files"], s["optics"], s["truth"], s["ruler"]
         ticks = ruler["tick_positions_px"]
@@ -164,11 +169,7 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
         r = measure(root / f["science"], scale_points=(p1, p2, mm, 1.0),
                     distance_mm=(o["distance_mm"], 10.0),
                     slit_separation_um=(o["slit_separation_um"], 2.0))
-        records.append(r.to_dict())
-        objects.append(r)
-        if not r.ok:
-            failed = True
-            out.write(f"    error: {r.error}\n")
+        if not keep(r):
             return
         table.add("period", r.period_px, r.period_px_err, "px", t["period_px"])
         table.add("fringe spacing", r.get("fringe_spacing_mm"), r.get("fringe_spacing_mm_err"),
@@ -183,7 +184,6 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
 
     # Bench 3: filtered lamp behind a slit source: partial coherence.
     def lamp() -> None:
-        nonlocal failed
         s = scen["lamp546"]
         f, o, t = s["files"], s["optics"], s["truth"]
         src = o["source"]
@@ -191,11 +191,7 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
                     wavelength_nm=(o["wavelength_nm"], 0.5),
                     slit_separation_um=(o["slit_separation_um"], 2.0),
                     source_distance_mm=(src["distance_mm"], 1.0), source_shape=src["shape"])
-        records.append(r.to_dict())
-        objects.append(r)
-        if not r.ok:
-            failed = True
-            out.write(f"    error: {r.error}\n")
+        if not keep(r):
             return
         table.add("period", r.period_px, r.period_px_err, "px")
         out.write(f"    nominal lambda L/d is {t.get('period_px'):.4g} px; an extended source "
@@ -215,17 +211,11 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
 
     # Bench 4: interferometer stack with phase drift.
     def drift() -> None:
-        nonlocal failed
         s = scen["hene633_drift"]
         f, t = s["files"], s["truth"]
         phases, errs = [], []
         for r in measure_frames(root / f["science"]):
-            records.append(r.to_dict())
-            if r.frame == 0:
-                objects.append(r)
-            if not r.ok:
-                failed = True
-                out.write(f"    frame {r.frame}: {r.error}\n")
+            if not keep(r, figure=r.frame == 0, where=f"frame {r.frame}"):
                 continue
             phases.append(r.phase_rad)
             errs.append(r.phase_rad_err)
@@ -279,7 +269,6 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
 
     # Bench 5: photon counting.
     def photon_run() -> None:
-        nonlocal failed
         from fringe.io import iter_frames
         from fringe.photons import analyze_photons
 
@@ -288,10 +277,7 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
         stack = (fr.data for fr in iter_frames(root / f["science"]))
         dark = np.stack([fr.data for fr in iter_frames(root / f["dark"])])
         r = analyze_photons(stack, dark=dark, file=f["science"])
-        records.append(r.to_dict())
-        if not r.ok:
-            failed = True
-            out.write(f"    error: {r.error}\n")
+        if not keep(r, figure=False):
             return
         out.write(f"    {f['science']}: {r.get('photons'):.0f} photon events; dark stack "
                   f"{f['dark']} for the background\n")
@@ -314,7 +300,6 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
 
     # Bench 6: known lines through one double slit.
     def lines() -> None:
-        nonlocal failed
         s = scen["linecheck"]
         f, o, t = s["files"], s["optics"], s["truth"]
         geo = {"pixel_um": (o["pixel_um"], 0.005), "distance_mm": (o["distance_mm"], 0.1),
@@ -325,11 +310,7 @@ def run_demo(samples: str | None = None, out_dir: str | None = None,
                 ("sodium", "sodium wavelength (D2:D1 = 2:1 mean)",
                  t["sodium"]["wavelength_nm_weighted_mean"])):
             r = measure(root / f[key], dark=root / f["dark"], **geo)
-            records.append(r.to_dict())
-            objects.append(r)
-            if not r.ok:
-                failed = True
-                out.write(f"    {f[key]}: {r.error}\n")
+            if not keep(r, where=f[key]):
                 continue
             table.add(label, r.get("wavelength_nm"), r.get("wavelength_nm_err"), "nm", nominal)
             _warnings(out, r)
