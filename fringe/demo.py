@@ -56,7 +56,7 @@ class _Table:
         if truth is None:
             self.rows.append((name, meas, "", ""))
             return
-        tr = f"{truth:.4g} {unit}".strip()
+        tr = f"{truth:.5g} {unit}".strip()
         verdict = ""
         if value is not None and err is not None:
             dev = abs(value - truth)
