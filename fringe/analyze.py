@@ -503,12 +503,7 @@ def analyze_image(
                         "sigma_pooled": _bin_sigma(prof1, noise)})
 
     # 6. Warnings that make a number unreliable.
-    if period < 2.5:
-        res.warn(f"period {period:.2f} px is close to the sampling limit of 2 px: aliasing "
-                 "risk, the period may be wrong")
-    if extent_u / period < 3:
-        res.warn(f"only {extent_u / period:.1f} fringes in the region (fewer than 3): period "
-                 "and visibility are unreliable")
+    res.warn_sampling(period, extent_u / period)
     if not fixed and peak.snr < 2 * min_snr:
         res.warn(f"weak fringe signal (spectral SNR {peak.snr:.1f})")
     if fixed and v_raw_err > 0 and v_raw / v_raw_err < min_snr:

@@ -1425,6 +1425,22 @@ def fit_poisson_profile(
                       converged=ok, warnings=warnings)
 
 
+def _set_significance(res: FringeResult, fit: Any, search: Any, note: str) -> None:
+    """Likelihood-ratio significance of the fringe modulation, into the result."""
+    p_val, z = lr_significance(fit.lr, dof=fit.dof, search=search)
+    res.set("lr_statistic", fit.lr)
+    res.set("lr_dof", fit.dof)
+    res.set("trials_factor", p_val / fit.p_value_local if fit.p_value_local > 0 else math.nan)
+    res.set("p_value_local", fit.p_value_local)
+    res.set("significance_local", fit.sigma_local)
+    res.set("p_value", p_val)
+    res.set("significance", z)
+    res.set("significance_note", note)
+    if z < 3.0:
+        res.warn(f"fringe modulation not significant ({z:.1f} sigma, p = {p_val:.2g}): "
+                 "period, phase and visibility may be noise")
+
+
 def photons_needed(visibility: float, visibility_err: float, photons: float,
                    precision: float) -> float:
     """Photons needed for a relative visibility precision, scaled from a measurement.
@@ -1829,24 +1845,8 @@ def analyze_events(
         search = (2 * cell, cell * cell) if n_strips > 1 else (cell, 0.0)
         note = ("frequency refined near the given one: local p-value (chi-square, 2 dof) "
                 "corrected for the look-elsewhere effect within the refinement range")
-    p_val, z = lr_significance(fit.lr, dof=fit.dof, search=search)
-    trials = p_val / fit.p_value_local if fit.p_value_local > 0 else math.nan
-    res.set("lr_statistic", fit.lr)
-    res.set("lr_dof", fit.dof)
-    res.set("trials_factor", trials)
-    res.set("p_value_local", fit.p_value_local)
-    res.set("significance_local", fit.sigma_local)
-    res.set("p_value", p_val)
-    res.set("significance", z)
-    res.set("significance_note", note)
-    if z < 3.0:
-        res.warn(f"fringe modulation not significant ({z:.1f} sigma, p = {p_val:.2g}): "
-                 "period, phase and visibility may be noise")
-    if extent_u / period < 3:
-        res.warn(f"only {extent_u / period:.1f} fringes in the region (fewer than 3): period "
-                 "and visibility are unreliable")
-    if period < 2.5:
-        res.warn(f"period {period:.2f} px is close to the sampling limit of 2 px")
+    _set_significance(res, fit, search, note)
+    res.warn_sampling(period, extent_u / period)
 
     # Photons needed for the chosen precision.
     res.set("precision", float(precision))
@@ -2136,22 +2136,12 @@ def analyze_counts_table(
     res.set("fringes_in_region", span / fit.values["period"])
     res.set("deviance", fit.deviance)
     res.set("bins", fit.n_bins)
-    p_val, z = lr_significance(fit.lr, dof=fit.dof, search=search)
-    trials = p_val / fit.p_value_local if fit.p_value_local > 0 else math.nan
-    res.set("lr_statistic", fit.lr)
-    res.set("lr_dof", fit.dof)
-    res.set("trials_factor", trials)
-    res.set("p_value_local", fit.p_value_local)
-    res.set("significance_local", fit.sigma_local)
-    res.set("p_value", p_val)
-    res.set("significance", z)
-    res.set("significance_note",
-            "frequency searched by periodogram: local p-value (chi-square, 2 dof, Wilks) "
-            "corrected for the look-elsewhere effect (Davies' bound)" if searched else
-            ("frequency fixed: chi-square with 2 dof (Wilks)" if fix_frequency else
-             "frequency refined near the given one: corrected for a few frequencies"))
-    if z < 3.0:
-        res.warn(f"fringe modulation not significant ({z:.1f} sigma, p = {p_val:.2g})")
+    _set_significance(
+        res, fit, search,
+        "frequency searched by periodogram: local p-value (chi-square, 2 dof, Wilks) "
+        "corrected for the look-elsewhere effect (Davies' bound)" if searched else
+        ("frequency fixed: chi-square with 2 dof (Wilks)" if fix_frequency else
+         "frequency refined near the given one: corrected for a few frequencies"))
     res.set("precision", float(precision))
     res.set("photons_needed", photons_needed(vis, vis_err, photons, precision))
     res.set("photons_needed_ideal", photons_needed_ideal(vis, precision))

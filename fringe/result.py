@@ -68,6 +68,20 @@ class FringeResult:
         if message not in self.warnings:
             self.warnings.append(message)
 
+    def warn_sampling(self, period_px: float, fringes: float) -> None:
+        """Warnings when the period is near the sampling limit or too few fringes fit.
+
+        Below 2.5 px per fringe the pattern is within a quarter of the Nyquist limit
+        (2 px), where aliasing can give a wrong period; with fewer than three fringes the
+        period and visibility rest on too little of the pattern (common practice).
+        """
+        if period_px < 2.5:
+            self.warn(f"period {period_px:.2f} px is close to the sampling limit of 2 px: "
+                      "aliasing risk, the period may be wrong")
+        if fringes < 3:
+            self.warn(f"only {fringes:.1f} fringes in the region (fewer than 3): period and "
+                      "visibility are unreliable")
+
     def fail(self, message: str) -> FringeResult:
         """Mark as failed: no numbers are kept except ``snr`` and ``saturated_fraction``."""
         self.status = "error"
